@@ -1,0 +1,186 @@
+"""Every error jobdesk raises, grouped by what failed.
+
+Each error carries the service's own message where there is one and a ``hint`` that says what
+to do next. :func:`from_transport` is the single place where exceptions of the libraries
+underneath (requests, sqlite3, OSError) become ours.
+"""
+
+from __future__ import annotations
+
+import errno
+import sqlite3
+
+import requests
+
+
+class JobdeskError(Exception):
+    """Base of every error jobdesk raises; ``hint`` says what to do next."""
+
+    hint: str = ""
+
+    def __init__(self, message: str, *, hint: str | None = None, service: str | None = None):
+        self.message = message
+        if hint is not None:
+            self.hint = hint
+        self.service = service
+        super().__init__(message)
+
+    def __str__(self) -> str:
+        text = self.message
+        if self.service and self.service not in text:
+            text = f"{text} [service: {self.service}]"
+        if self.hint:
+            text = f"{text}\n  what to do: {self.hint}"
+        return text
+
+
+# --- the service -------------------------------------------------------------------------------
+
+
+class ServiceError(JobdeskError):
+    """Talking to a TAP service failed."""
+
+
+class ServiceUnreachable(ServiceError):
+    """No answer: connection refused or reset, DNS failure, or timeouts, after every retry."""
+
+    hint = "check the service URL and your network; the job record is kept, so re-run the same call later"
+
+
+class ServiceRefused(ServiceError):
+    """The service answered with an HTTP error status (after retries for 5xx and 429)."""
+
+    hint = "read the service's message above; if it is overloaded, try again later"
+
+    def __init__(self, message: str, *, status: int | None = None, **kw):
+        super().__init__(message, **kw)
+        self.status = status
+
+
+class ServiceResponseInvalid(ServiceError):
+    """The service answered with something that is not the document the protocol requires."""
+
+    hint = "the service may be misconfigured or behind a proxy that rewrites answers; check the URL"
+
+
+class BadServiceURL(ServiceError):
+    """The service address cannot be used (not http/https, no host)."""
+
+    hint = "give the TAP service's base URL, e.g. http://127.0.0.1:8787/tap"
+
+
+# --- the query and the job ---------------------------------------------------------------------
+
+
+class QueryRejected(JobdeskError):
+    """The service refused the ADQL; the message is the service's own."""
+
+    hint = "fix the query where the service's message points, then submit again"
+
+
+class UploadInvalid(JobdeskError):
+    """A table given in ``uploads=`` cannot be sent (bad name or not a table)."""
+
+    hint = "give uploads as {name: astropy Table, pandas DataFrame or VOTable path}, names as ADQL identifiers"
+
+
+class JobFailed(JobdeskError):
+    """The job ended in ERROR or ABORTED; ``summary`` holds the UWS errorSummary message."""
+
+    hint = "read the service's message; resubmit with refresh=True once the cause is fixed"
+
+    def __init__(self, message: str, *, phase: str = "ERROR", summary: str | None = None, **kw):
+        super().__init__(message, **kw)
+        self.phase = phase
+        self.summary = summary
+
+
+class JobAborted(JobFailed):
+    """The job was aborted (by you, a colleague or the service)."""
+
+    hint = "submit again with refresh=True to run it anew"
+
+
+class JobLost(JobdeskError):
+    """The service no longer knows the job (destroyed or expired) and no result was saved."""
+
+    hint = "resubmit with refresh=True; jobdesk keeps the old record for reference"
+
+
+class WaitTimeout(JobdeskError, TimeoutError):
+    """``wait(timeout=...)`` ran out before the job finished; the job goes on running."""
+
+    hint = "call wait() again later, or leave it: the job record survives kernel restarts"
+
+
+# --- results and the cache --------------------------------------------------------------------
+
+
+class ResultTruncated(JobdeskError):
+    """The result was cut (MAXREC, a service limit, or a time or size limit): it is incomplete."""
+
+    hint = ("raise maxrec (or narrow the query) and submit again; "
+            "pass allow_truncated=True to use the partial rows knowingly")
+
+    def __init__(self, message: str, *, rows: int | None = None, **kw):
+        super().__init__(message, **kw)
+        self.rows = rows
+
+
+class ResultUnavailable(JobdeskError):
+    """The job has no result yet (still running, or it failed)."""
+
+    hint = "call job.wait() first"
+
+
+class CacheCorrupt(JobdeskError):
+    """A cached file does not match the checksum its record holds; it is never served."""
+
+    hint = "submit again with refresh=True to fetch a fresh copy; the bad file was set aside"
+
+
+class StorageFull(JobdeskError):
+    """The disk holding the cache is full or over quota; nothing half-written was kept."""
+
+    hint = "free space (jobdesk prune) or point JOBDESK_HOME at a larger disk, then wait() again"
+
+
+class IndexBusy(JobdeskError):
+    """The local index stayed locked by another process beyond every retry."""
+
+    hint = "another jobdesk process holds the index for too long; try again"
+
+
+class ConfigError(JobdeskError):
+    """A jobdesk setting is invalid."""
+
+
+# --- mapping the libraries' exceptions to ours -------------------------------------------------
+
+
+def from_transport(exc: BaseException, *, service: str | None = None) -> JobdeskError:
+    """Turn an exception of requests, sqlite3 or the OS into the matching jobdesk error."""
+    if isinstance(exc, JobdeskError):
+        return exc
+    if isinstance(exc, requests.exceptions.InvalidURL | requests.exceptions.MissingSchema
+                  | requests.exceptions.InvalidSchema):
+        return BadServiceURL(f"bad service URL: {exc}", service=service)
+    if isinstance(exc, requests.exceptions.Timeout):
+        return ServiceUnreachable(f"the service did not answer in time ({exc.__class__.__name__})",
+                                  service=service)
+    if isinstance(exc, requests.exceptions.ConnectionError | requests.exceptions.ChunkedEncodingError):
+        return ServiceUnreachable(f"could not reach the service: {_short(exc)}", service=service)
+    if isinstance(exc, requests.exceptions.HTTPError) and exc.response is not None:
+        r = exc.response
+        return ServiceRefused(f"HTTP {r.status_code} from {r.url}: {_short(r.text)}",
+                              status=r.status_code, service=service)
+    if isinstance(exc, OSError) and exc.errno in (errno.ENOSPC, errno.EDQUOT):
+        return StorageFull(f"no space left writing the cache: {exc}")
+    if isinstance(exc, sqlite3.OperationalError) and "locked" in str(exc):
+        return IndexBusy(f"the jobdesk index is locked: {exc}")
+    return JobdeskError(f"{exc.__class__.__name__}: {exc}", service=service)
+
+
+def _short(value: object, limit: int = 300) -> str:
+    text = " ".join(str(value).split())
+    return text if len(text) <= limit else text[: limit - 3] + "..."

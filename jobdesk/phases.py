@@ -1,0 +1,32 @@
+"""Job phases: the UWS 1.1 ones (§2.1.3) plus the two that exist only on this side.
+
+A record starts ``LOCAL`` (waiting for a free slot under the per-service limit, or about to be
+created on the service) and becomes ``SUBMITTED`` once the service has given it a job URL; from
+then on it carries the phase the service reports.
+"""
+
+PENDING = "PENDING"
+QUEUED = "QUEUED"
+EXECUTING = "EXECUTING"
+COMPLETED = "COMPLETED"
+ERROR = "ERROR"
+ABORTED = "ABORTED"
+UNKNOWN = "UNKNOWN"
+HELD = "HELD"
+SUSPENDED = "SUSPENDED"
+ARCHIVED = "ARCHIVED"
+
+# Our own, never sent to a service.
+LOCAL = "LOCAL"          # recorded here, not yet created on the service
+SUBMITTED = "SUBMITTED"  # created on the service, phase not yet read back
+LOST = "LOST"            # the service no longer knows the job and no result was saved
+
+UWS_PHASES = (PENDING, QUEUED, EXECUTING, COMPLETED, ERROR, ABORTED, UNKNOWN, HELD, SUSPENDED,
+              ARCHIVED)
+
+# Terminal for a client (UWS 1.1 §2.1.3): nothing more will happen on the service.
+TERMINAL = frozenset({COMPLETED, ERROR, ABORTED, ARCHIVED, LOST})
+# Still worth waiting for.
+ACTIVE = frozenset({LOCAL, SUBMITTED, PENDING, QUEUED, EXECUTING, UNKNOWN, HELD, SUSPENDED})
+# Holding one of the service's run slots.
+RUNNING = frozenset({SUBMITTED, QUEUED, EXECUTING, UNKNOWN, HELD, SUSPENDED})
