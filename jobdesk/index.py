@@ -1,0 +1,357 @@
+"""The local SQLite index: one row per job, its phase history, safe for many processes at once.
+
+Kernels, the command line and the Jupyter server process all open the same file. SQLite in WAL
+mode lets readers run while one process writes; every read-modify-write (claiming a key, taking
+a lease, starting a job under the per-service limit) runs inside ``BEGIN IMMEDIATE`` so two
+processes can never both decide to create the same server job. Lock waits are absorbed by the
+busy timeout and a bounded retry, so "database is locked" never reaches the user.
+
+The schema is versioned with ``PRAGMA user_version``; ``MIGRATIONS[n]`` upgrades version n to n+1.
+
+Columns of ``jobs`` (see docs/architecture.md, "The index row"): ``created``, ``submitted``,
+``started``, ``finished`` and ``updated`` are unix seconds; ``uploads`` and ``warnings`` are
+JSON; ``owner``/``lease_until`` name the process currently driving the job (creating it on the
+service, waiting on it or downloading its result) and until when.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import socket
+import sqlite3
+import threading
+import time
+from collections.abc import Callable, Iterator
+from contextlib import contextmanager
+from pathlib import Path
+
+import sqlite_utils
+from tenacity import retry, retry_if_exception, stop_after_attempt, wait_random_exponential
+
+from jobdesk import phases
+from jobdesk.errors import IndexBusy
+
+JOB_COLUMNS: dict[str, type] = {
+    "id": str, "key": str, "service": str, "adql": str, "canonical": str, "maxrec": int,
+    "fmt": str, "label": str, "scope": str, "uploads": str, "phase": str, "job_url": str,
+    "run_id": str, "created": float, "intent": float, "submitted": float, "started": float,
+    "finished": float, "updated": float, "rows": int, "truncated": int, "result_sha256": str,
+    "result_bytes": int, "result_stat": str, "parquet_sha256": str, "parquet_stat": str,
+    "error": str, "notebook": str, "user": str, "host": str, "requests": int, "owner": str,
+    "lease_until": float, "layer": str, "warnings": str, "server": str,
+}
+
+MIGRATIONS: list[Callable[[sqlite_utils.Database], None]] = []
+
+
+def _migration(fn: Callable[[sqlite_utils.Database], None]) -> Callable:
+    MIGRATIONS.append(fn)
+    return fn
+
+
+@_migration
+def _v0_to_v1(db: sqlite_utils.Database) -> None:
+    # Raw statements (sqlite-utils writes the DDL): its table methods commit on their own,
+    # which would end the migration's IMMEDIATE transaction early.
+    db.execute(db.create_table_sql("jobs", JOB_COLUMNS, pk="id",
+                                   not_null={"key", "service", "phase", "created"},
+                                   defaults={"requests": 0, "layer": "personal"}))
+    for cols in (("key", "created"), ("created",), ("phase", "service"), ("updated",)):
+        db.execute(f"CREATE INDEX idx_jobs_{'_'.join(cols)} ON jobs ({', '.join(cols)})")
+    db.execute(db.create_table_sql("phases", {"job_id": str, "phase": str, "at": float,
+                                              "note": str}))
+    db.execute("CREATE INDEX idx_phases_job ON phases (job_id, at)")
+
+
+SCHEMA_VERSION = len(MIGRATIONS)
+BUSY_TIMEOUT_MS = 30_000
+
+
+def this_process() -> str:
+    """Owner name of the running process: host and pid, so a dead owner on this host is seen."""
+    return f"{socket.gethostname()}:{os.getpid()}"
+
+
+def owner_alive(owner: str | None) -> bool:
+    """Whether the process named by ``owner`` may still run (always True for other hosts)."""
+    if not owner:
+        return False
+    host, _, pid = owner.rpartition(":")
+    if host != socket.gethostname() or not pid.isdigit():
+        return True
+    try:
+        os.kill(int(pid), 0)
+    except ProcessLookupError:
+        return False
+    except PermissionError:
+        return True
+    return True
+
+
+def _locked(exc: BaseException) -> bool:
+    return isinstance(exc, sqlite3.OperationalError) and (
+        "locked" in str(exc) or "busy" in str(exc))
+
+
+_retry_locked = retry(retry=retry_if_exception(_locked), stop=stop_after_attempt(8),
+                      wait=wait_random_exponential(multiplier=0.05, max=2.0), reraise=True)
+
+
+class Index:
+    """The SQLite index of one desk root."""
+
+    def __init__(self, path: Path | str):
+        self.path = Path(path)
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        conn = sqlite3.connect(self.path, timeout=BUSY_TIMEOUT_MS / 1000, isolation_level=None,
+                               check_same_thread=False)
+        conn.execute(f"PRAGMA busy_timeout = {BUSY_TIMEOUT_MS}")
+        conn.execute("PRAGMA journal_mode = WAL")
+        conn.execute("PRAGMA synchronous = NORMAL")
+        conn.execute("PRAGMA foreign_keys = ON")
+        self.db = sqlite_utils.Database(conn)
+        self._lock = threading.RLock()
+        self._migrate()
+
+    # --- transactions -------------------------------------------------------------------------
+
+    @contextmanager
+    def _write(self) -> Iterator[sqlite3.Connection]:
+        """An IMMEDIATE transaction: holds the write lock from the first statement."""
+        with self._lock:
+            conn = self.db.conn
+            try:
+                _retry_locked(conn.execute)("BEGIN IMMEDIATE")
+            except sqlite3.OperationalError as exc:
+                raise IndexBusy(f"the jobdesk index at {self.path} stayed locked: {exc}") from exc
+            try:
+                yield conn
+            except BaseException:
+                conn.execute("ROLLBACK")
+                raise
+            else:
+                conn.execute("COMMIT")
+
+    def _migrate(self) -> None:
+        with self._write() as conn:
+            version = conn.execute("PRAGMA user_version").fetchone()[0]
+            if version > SCHEMA_VERSION:
+                raise IndexBusy(f"the index at {self.path} has schema {version}, newer than this "
+                                f"jobdesk understands ({SCHEMA_VERSION})",
+                                hint="upgrade jobdesk, or point JOBDESK_HOME at another root")
+            for step in MIGRATIONS[version:]:
+                step(self.db)
+            conn.execute(f"PRAGMA user_version = {SCHEMA_VERSION}")
+
+    # --- reading ------------------------------------------------------------------------------
+
+    def get(self, job_id: str) -> dict | None:
+        with self._lock:
+            cur = self.db.execute("SELECT * FROM jobs WHERE id = ?", [job_id])
+            row = cur.fetchone()
+            return None if row is None else _decode(dict(zip([d[0] for d in cur.description], row)))
+
+    def history(self, job_id: str) -> list[dict]:
+        with self._lock:
+            cur = self.db.execute(
+                "SELECT phase, at, note FROM phases WHERE job_id = ? ORDER BY at, rowid", [job_id])
+            return [dict(zip(("phase", "at", "note"), r)) for r in cur.fetchall()]
+
+    def list(self, *, phase: str | list[str] | None = None, service: str | None = None,
+             text: str | None = None, limit: int | None = 50, offset: int = 0) -> list[dict]:
+        where, args = _filters(phase, service, text)
+        sql = f"SELECT * FROM jobs {where} ORDER BY created DESC, rowid DESC"
+        if limit is not None:
+            sql += " LIMIT ? OFFSET ?"
+            args += [int(limit), int(offset)]
+        with self._lock:
+            cur = self.db.execute(sql, args)
+            cols = [d[0] for d in cur.description]
+            return [_decode(dict(zip(cols, r))) for r in cur.fetchall()]
+
+    def count(self, *, phase: str | list[str] | None = None, service: str | None = None,
+              text: str | None = None) -> int:
+        where, args = _filters(phase, service, text)
+        with self._lock:
+            return self.db.execute(f"SELECT count(*) FROM jobs {where}", args).fetchone()[0]
+
+    def version(self) -> str:
+        """A cheap token that changes whenever any job row changes (for change feeds)."""
+        with self._lock:
+            n, last = self.db.execute("SELECT count(*), max(updated) FROM jobs").fetchone()
+        return f"{n}:{last or 0:.6f}"
+
+    # --- writing ------------------------------------------------------------------------------
+
+    def claim(self, key: str, fields: dict, *, reuse: Callable[[dict], bool]) -> tuple[dict, bool]:
+        """Return the newest record for ``key`` that ``reuse`` accepts, or insert ``fields``.
+
+        Atomic across processes: of two simultaneous claims of one key, one inserts and the
+        other gets that record back.
+        """
+        with self._write() as conn:
+            cur = conn.execute("SELECT * FROM jobs WHERE key = ? ORDER BY created DESC", [key])
+            cols = [d[0] for d in cur.description]
+            for row in cur.fetchall():
+                record = _decode(dict(zip(cols, row)))
+                if reuse(record):
+                    return record, False
+            now = time.time()
+            record = {**fields, "key": key, "created": fields.get("created", now), "updated": now}
+            _insert(conn, "jobs", _encode(record))
+            self._log_phase(record["id"], record["phase"], now, "recorded")
+        return self.get(record["id"]), True
+
+    def insert(self, fields: dict) -> dict:
+        """Insert a record as given (used when importing from a group cache)."""
+        now = time.time()
+        with self._write() as conn:
+            _insert(conn, "jobs", _encode({**fields, "updated": now}))
+            self._log_phase(fields["id"], fields["phase"], fields.get("created", now), "imported")
+        return self.get(fields["id"])
+
+    def update(self, job_id: str, *, note: str | None = None, **fields) -> dict:
+        """Change fields of one record; a phase change is appended to the phase history."""
+        with self._write() as conn:
+            old = conn.execute("SELECT phase FROM jobs WHERE id = ?", [job_id]).fetchone()
+            if old is None:
+                raise KeyError(job_id)
+            now = time.time()
+            if "requests_add" in fields:
+                extra = int(fields.pop("requests_add"))
+                conn.execute("UPDATE jobs SET requests = coalesce(requests, 0) + ? WHERE id = ?",
+                             [extra, job_id])
+            fields["updated"] = now
+            sets = ", ".join(f"{_column(name)} = ?" for name in fields)
+            conn.execute(f"UPDATE jobs SET {sets} WHERE id = ?",
+                         [*_encode(fields).values(), job_id])
+            if "phase" in fields and fields["phase"] != old[0]:
+                self._log_phase(job_id, fields["phase"], now, note)
+        return self.get(job_id)
+
+    def take_lease(self, job_id: str, owner: str, seconds: float) -> bool:
+        """Become the one process driving this job, if no live process drives it now."""
+        with self._write() as conn:
+            row = conn.execute("SELECT owner, lease_until FROM jobs WHERE id = ?",
+                               [job_id]).fetchone()
+            if row is None:
+                return False
+            holder, until = row
+            now = time.time()
+            free = (holder is None or holder == owner or (until or 0) < now
+                    or not owner_alive(holder))
+            if free:
+                conn.execute("UPDATE jobs SET owner = ?, lease_until = ? WHERE id = ?",
+                             [owner, now + seconds, job_id])
+            return free
+
+    def release(self, job_id: str, owner: str) -> None:
+        with self._write() as conn:
+            conn.execute("UPDATE jobs SET owner = NULL, lease_until = NULL "
+                         "WHERE id = ? AND owner = ?", [job_id, owner])
+
+    def claim_start(self, job_id: str, *, limit: int | None, owner: str, seconds: float) -> bool:
+        """Take the lease to create a LOCAL job on its service, honouring the running limit.
+
+        Jobs start in the order they were recorded: a job may start only while the number of
+        jobs already running on its service plus the older LOCAL jobs ahead of it is below
+        ``limit``.
+        """
+        with self._write() as conn:
+            row = conn.execute("SELECT service, phase, created, owner, lease_until FROM jobs "
+                               "WHERE id = ?", [job_id]).fetchone()
+            if row is None or row[1] != phases.LOCAL:
+                return False
+            service, _, created, holder, until = row
+            now = time.time()
+            if holder and holder != owner and (until or 0) >= now and owner_alive(holder):
+                return False
+            if limit is not None:
+                running = conn.execute(
+                    f"SELECT count(*) FROM jobs WHERE service = ? AND phase IN "
+                    f"({','.join('?' * len(phases.RUNNING))})",
+                    [service, *sorted(phases.RUNNING)]).fetchone()[0]
+                ahead = conn.execute(
+                    "SELECT count(*) FROM jobs WHERE service = ? AND phase = ? AND "
+                    "(created < ? OR (created = ? AND id < ?))",
+                    [service, phases.LOCAL, created, created, job_id]).fetchone()[0]
+                if running + ahead >= limit:
+                    return False
+            conn.execute("UPDATE jobs SET owner = ?, lease_until = ? WHERE id = ?",
+                         [owner, now + seconds, job_id])
+            return True
+
+    def forget(self, job_id: str) -> bool:
+        with self._write() as conn:
+            conn.execute("DELETE FROM phases WHERE job_id = ?", [job_id])
+            gone = conn.execute("DELETE FROM jobs WHERE id = ?", [job_id]).rowcount
+        return bool(gone)
+
+    def referenced_objects(self) -> set[str]:
+        """Every checksum some record points at (eviction must keep these files)."""
+        with self._lock:
+            rows = self.db.execute(
+                "SELECT result_sha256, parquet_sha256 FROM jobs").fetchall()
+        return {sha for row in rows for sha in row if sha}
+
+    def integrity(self) -> str:
+        with self._lock:
+            return self.db.execute("PRAGMA integrity_check").fetchone()[0]
+
+    def close(self) -> None:
+        with self._lock:
+            self.db.conn.close()
+
+    def _log_phase(self, job_id: str, phase: str, at: float, note: str | None) -> None:
+        _insert(self.db.conn, "phases", {"job_id": job_id, "phase": phase, "at": at, "note": note})
+
+
+def _column(name: str) -> str:
+    if name not in JOB_COLUMNS:
+        raise KeyError(f"no such job field: {name}")
+    return name
+
+
+def _insert(conn: sqlite3.Connection, table: str, record: dict) -> None:
+    names = [_column(n) for n in record] if table == "jobs" else list(record)
+    conn.execute(f"INSERT INTO {table} ({', '.join(names)}) VALUES ({', '.join('?' * len(names))})",
+                 list(record.values()))
+
+
+def _filters(phase, service, text) -> tuple[str, list]:
+    clauses, args = [], []
+    if phase:
+        wanted = [phase] if isinstance(phase, str) else list(phase)
+        clauses.append(f"phase IN ({','.join('?' * len(wanted))})")
+        args += wanted
+    if service:
+        clauses.append("service = ?")
+        args.append(service)
+    if text:
+        clauses.append("(label LIKE ? ESCAPE '\\' OR adql LIKE ? ESCAPE '\\' OR id = ?)")
+        pattern = "%" + text.replace("\\", "\\\\").replace("%", "\\%").replace("_", "\\_") + "%"
+        args += [pattern, pattern, text]
+    return ("WHERE " + " AND ".join(clauses)) if clauses else "", args
+
+
+_JSON_FIELDS = ("uploads", "warnings", "server")
+
+
+def _encode(record: dict) -> dict:
+    out = dict(record)
+    for name in _JSON_FIELDS:
+        if name in out and out[name] is not None and not isinstance(out[name], str):
+            out[name] = json.dumps(out[name], sort_keys=True)
+    return out
+
+
+def _decode(record: dict) -> dict:
+    for name in _JSON_FIELDS:
+        value = record.get(name)
+        if isinstance(value, str):
+            try:
+                record[name] = json.loads(value)
+            except ValueError:
+                pass
+    return record
