@@ -1,0 +1,725 @@
+"""Talking UWS 1.1 / TAP 1.1 to one service: create, run, wait, abort, delete, find, download.
+
+This is the only module that speaks HTTP and the only place that retries (with tenacity):
+HTTP 5xx and 429 (honouring ``Retry-After``), connection failures and timeouts are retried a
+bounded number of times, then become :class:`~jobdesk.errors.ServiceUnreachable` or
+:class:`~jobdesk.errors.ServiceRefused`.  Requests that change state on the service are
+written so that a retry after a lost answer cannot do harm: ``RUN`` is never repeated on a job
+that has left PENDING, and ``DELETE`` does not follow its redirect to the (possibly huge) job
+list.  Every XML document is parsed with defusedxml.  Whatever the session carries (tokens,
+cookies, passwords) is scrubbed from every message this module formats.
+"""
+
+from __future__ import annotations
+
+import email.utils
+import hashlib
+import logging
+import os
+import re
+import time
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from datetime import UTC, datetime
+from pathlib import Path
+from typing import Any
+from urllib.parse import urljoin, urlsplit, urlunsplit
+from xml.etree.ElementTree import Element, ParseError
+
+import requests
+from defusedxml import DefusedXmlException
+from defusedxml import ElementTree as SafeET
+from tenacity import Retrying, retry_if_exception_type, stop_after_attempt, wait_exponential_jitter
+
+from jobdesk import phases
+from jobdesk.errors import (
+    BadServiceURL,
+    JobdeskError,
+    JobFailed,
+    JobLost,
+    ServiceRefused,
+    ServiceResponseInvalid,
+    ServiceUnreachable,
+    UploadInvalid,
+    from_transport,
+)
+
+log = logging.getLogger(__name__)
+
+UWS_NS = "http://www.ivoa.net/xml/UWS/v1.0"  # UWS 1.0 and 1.1 share this namespace
+XLINK_HREF = "{http://www.w3.org/1999/xlink}href"
+CHUNK = 1 << 20  # 1 MiB: download buffer, so memory does not grow with the result
+FIRST_POLL = 0.2  # seconds before the first poll when WAIT is not available
+# UWS 1.1 §2.2.1.2: WAIT blocks only while the job is in one of these phases.
+WAITABLE = frozenset({phases.PENDING, phases.QUEUED, phases.EXECUTING})
+# Terminal for a client (UWS 1.1 §2.1.3).
+TERMINAL = frozenset({phases.COMPLETED, phases.ERROR, phases.ABORTED, phases.ARCHIVED})
+_UPLOAD_NAME = re.compile(r"[A-Za-z][A-Za-z0-9_]*\Z")  # ADQL 2.1 regular identifier
+_BENIGN_HEADERS = frozenset({"user-agent", "accept", "accept-encoding", "connection",
+                             "accept-language", "cache-control", "content-type"})
+
+
+@dataclass
+class JobStatus:
+    """One reading of a UWS job document."""
+
+    url: str
+    phase: str
+    run_id: str | None
+    uws_version: str | None  # "1.1", or None for a UWS 1.0 document (no version attribute)
+    creation_time: str | None
+    start_time: str | None
+    end_time: str | None
+    destruction: str | None
+    error_summary: str | None  # the errorSummary message
+    error_type: str | None  # transient | fatal
+    result_url: str | None  # href of the result named "result", else the first result
+    parameters: dict[str, str] = field(default_factory=dict)  # names upper-cased (TAP: case-insensitive)
+
+
+@dataclass
+class Downloaded:
+    """A result streamed to disk: where, how big, its sha256 over the whole file."""
+
+    path: Path
+    bytes: int
+    sha256: str
+    content_type: str | None
+
+
+class _RetryableStatus(Exception):
+    """An HTTP answer worth another try (5xx, 429); carries what the final error needs."""
+
+    def __init__(self, status: int, message: str, retry_after: float | None):
+        super().__init__(f"HTTP {status}")
+        self.status = status
+        self.message = message
+        self.retry_after = retry_after
+
+
+class _BodyCut(Exception):
+    """A download ended before the length the service announced."""
+
+
+_TRANSIENT = (_RetryableStatus, _BodyCut, requests.exceptions.ConnectionError,
+              requests.exceptions.Timeout, requests.exceptions.ChunkedEncodingError)
+
+
+class Remote:
+    """One TAP service's async job endpoint, with bounded retries and a request count."""
+
+    def __init__(self, base_url: str, session: requests.Session | None = None, *, attempts: int = 5,
+                 timeout: float = 30.0, wait_window: int = 30, max_backoff: float = 30.0):
+        parts = urlsplit(base_url.strip())
+        if parts.scheme not in ("http", "https") or not parts.hostname:
+            raise BadServiceURL(f"not an http(s) URL with a host: {_public_url(base_url)!r}")
+        self.base_url = base_url.strip().rstrip("/")
+        self.service = _public_url(self.base_url)  # the name used in messages: no credentials
+        self.session = session if session is not None else requests.Session()
+        self.attempts = max(1, int(attempts))
+        self.timeout = float(timeout)
+        self.wait_window = max(1, int(wait_window))
+        self.max_backoff = max(0.0, float(max_backoff))
+        self.requests = 0
+
+    # --- the UWS verbs -------------------------------------------------------------------------
+
+    def create(self, adql: str, *, maxrec: int | None = None, fmt: str = "votable",
+               uploads: Mapping[str, bytes] | None = None, run_id: str | None = None) -> str:
+        """Create (but do not run) an async job; return its absolute URL.
+
+        TAP 1.1 §3: the job list answers 303 with the job's URL in ``Location``; the redirect is
+        read, not followed, so creating a job costs one request.
+        """
+        form: list[tuple[str, str]] = [("REQUEST", "doQuery"), ("LANG", "ADQL"), ("QUERY", adql),
+                                       ("RESPONSEFORMAT", fmt)]
+        if maxrec is not None:
+            form.append(("MAXREC", str(int(maxrec))))
+        if run_id is not None:
+            form.append(("RUNID", run_id))
+        files = []
+        for name, content in (uploads or {}).items():
+            if not _UPLOAD_NAME.match(name):
+                raise UploadInvalid(f"upload name {name!r} is not an ADQL identifier")
+            if not isinstance(content, bytes | bytearray):
+                raise UploadInvalid(f"upload {name!r} must be given as VOTable bytes here")
+            # TAP 1.1 §3.3.1 / DALI 1.1 §3.4.5: one UPLOAD parameter per table, "name,param:part".
+            form.append(("UPLOAD", f"{name},param:{name}"))
+            files.append((name, (f"{name}.xml", bytes(content), "application/x-votable+xml")))
+        url = f"{self.base_url}/async"
+        response = self._request("POST", url, data=form, files=files or None, allow_redirects=False,
+                                 what="creating the job")
+        location = response.headers.get("Location")
+        if response.status_code in (301, 302, 303, 307, 201) and location:
+            return urljoin(response.url or url, location)
+        if response.status_code == 200:
+            # Not what UWS asks for, but some servers answer with the job document itself.
+            root = _parse_xml(response.content, self.service, "job document")
+            job_id = _child_text(root, "jobId")
+            if _local(root.tag) == "job" and job_id:
+                return f"{url}/{job_id}"
+        raise ServiceResponseInvalid(
+            f"creating a job gave HTTP {response.status_code} without a job URL (UWS 1.1 §2.2.3.1 "
+            f"asks for 303 + Location): {_snippet(response.content)}", service=self.service)
+
+    def run(self, job_url: str) -> None:
+        """Send ``PHASE=RUN`` once; after a lost answer, re-read the phase before trying again.
+
+        A second RUN reaching a job that is already EXECUTING can send it to ERROR on real
+        servers, so a retry happens only while the job still reads PENDING.
+        """
+        tries = 0
+
+        def attempt() -> None:
+            nonlocal tries
+            tries += 1
+            if tries > 1:
+                current = self.status(job_url)
+                if current.phase != phases.PENDING:
+                    log.debug("RUN already taken: %s is %s", job_url, current.phase)
+                    return
+            response = self._once("POST", f"{job_url}/phase", data={"PHASE": "RUN"},
+                                  allow_redirects=False)
+            self._check(response, what="starting the job", lost_on_404=True)
+
+        self._retry_call(self._retrying(), attempt, method="POST", url=f"{job_url}/phase")
+
+    def status(self, job_url: str, *, wait: int | None = None, phase: str | None = None) -> JobStatus:
+        """Read the job document; with ``wait``, block up to that many seconds (UWS 1.1 §2.2.1.2)."""
+        params: dict[str, str] = {}
+        timeout: Any = self.timeout
+        if wait is not None:
+            params["WAIT"] = str(int(wait))
+            if phase:
+                params["PHASE"] = phase
+            # The answer may legitimately take the whole window: read timeout = window + margin.
+            timeout = (self.timeout, max(0, int(wait)) + self.timeout)
+        response = self._request("GET", job_url, params=params or None, timeout=timeout,
+                                 lost_on_404=True, what="reading the job")
+        return _job_status(job_url, response.content, self.service)
+
+    def wait(self, job_url: str, *, deadline: float | None = None,
+             on_status: Callable[[JobStatus], None] | None = None) -> JobStatus:
+        """Follow the job until a terminal phase or ``deadline`` (a ``time.monotonic()`` value).
+
+        Uses UWS 1.1 blocking WAIT when the job document says version 1.1 and the service is seen
+        to honour it; otherwise polls with a backoff that starts short (a quick job is seen
+        quickly) and doubles up to ``max_backoff``.  Transient failures are retried until the
+        deadline (without one, for ``attempts`` consecutive failed readings).  At the deadline the
+        last status is returned: the caller decides what that means.
+        """
+        last: JobStatus | None = None
+        blocking: bool | None = None  # unknown until the first document is read
+        backoff = FIRST_POLL
+        failures = 0
+        while True:
+            if last is not None and last.phase in TERMINAL:
+                return last
+            if last is not None and deadline is not None and time.monotonic() >= deadline:
+                return last
+            try:
+                if last is None:
+                    current = self.status(job_url)
+                else:
+                    window = self._window(deadline)
+                    if blocking and last.phase in WAITABLE and window >= 1:
+                        started = time.monotonic()
+                        current = self.status(job_url, wait=window, phase=last.phase)
+                        if (current.phase == last.phase
+                                and time.monotonic() - started < min(1.0, window / 2)):
+                            # Back at once with nothing changed: WAIT is ignored here.
+                            log.debug("%s ignores WAIT; polling instead", self.service)
+                            blocking = False
+                    else:
+                        self._pause(backoff, deadline)
+                        backoff = min(backoff * 2, max(self.max_backoff, FIRST_POLL))
+                        current = self.status(job_url)
+            except (ServiceUnreachable, ServiceRefused) as exc:
+                if isinstance(exc, ServiceRefused) and not _is_transient_status(exc.status):
+                    raise
+                failures += 1
+                out_of_time = deadline is not None and time.monotonic() >= deadline
+                if (deadline is None and failures >= self.attempts) or (out_of_time and last is None):
+                    raise
+                if out_of_time:
+                    return last  # type: ignore[return-value]
+                log.debug("transient failure while waiting for %s: %s", job_url, exc.message)
+                self._pause(backoff, deadline)
+                backoff = min(backoff * 2, max(self.max_backoff, FIRST_POLL))
+                continue
+            failures = 0
+            if blocking is None:
+                blocking = _at_least_1_1(current.uws_version)
+            if last is not None and current.phase != last.phase:
+                backoff = FIRST_POLL  # something moved: look again soon
+            last = current
+            if on_status is not None:
+                on_status(current)
+
+    def abort(self, job_url: str) -> None:
+        """Ask the service to abort the job (UWS 1.1 §2.2.3.2, ``PHASE=ABORT``)."""
+        self._request("POST", f"{job_url}/phase", data={"PHASE": "ABORT"}, allow_redirects=False,
+                      lost_on_404=True, what="aborting the job")
+
+    def delete(self, job_url: str) -> None:
+        """Destroy the job on the service; a job already gone counts as deleted.
+
+        UWS 1.1 §2.2.3.3: the answer is a 303 to the job list, which is not followed.
+        Servers that refuse the DELETE method get the equivalent ``POST ACTION=DELETE``.
+        """
+        response = self._request("DELETE", job_url, allow_redirects=False, accept=(404, 405, 410, 501),
+                                 what="deleting the job")
+        if response.status_code in (405, 501):
+            response = self._request("POST", job_url, data={"ACTION": "DELETE"},
+                                     allow_redirects=False, accept=(404, 410),
+                                     what="deleting the job")
+
+    def error_detail(self, job_url: str) -> str:
+        """The service's own words on why the job failed (``{job}/error``, UWS 1.1 §2.2.1)."""
+        response = self._request("GET", f"{job_url}/error", accept=(404,), what="reading the error")
+        if response.status_code == 404:
+            summary = self.status(job_url).error_summary  # no detail document: the summary is all
+            return summary or ""
+        return _document_message(response.content, response.headers.get("Content-Type"))
+
+    def find(self, *, run_id: str, after: str, adql: str | None = None) -> list[str]:
+        """Job URLs created at or after ``after`` whose RUNID is ``run_id``; newest first.
+
+        For re-attaching to a job whose URL was never recorded (the process died between the
+        POST and writing it down).  Some services drop RUNID, so with ``adql`` a job whose QUERY
+        parameter is exactly that text also matches.  UWS 1.1 §2.2.2.1: ``AFTER`` filters the
+        list on the service; entries are checked again here, as a UWS 1.0 service ignores it.
+        """
+        listing = self._request("GET", f"{self.base_url}/async", params={"AFTER": after},
+                                what="listing jobs")
+        root = _parse_xml(listing.content, self.service, "job list")
+        if _local(root.tag) != "jobs":
+            raise ServiceResponseInvalid(f"expected a UWS job list, got <{_local(root.tag)}>: "
+                                         f"{_snippet(listing.content)}", service=self.service)
+        since = _when(after)
+        found: dict[str, datetime | None] = {}
+        for ref in _children(root, "jobref"):
+            href = _href(ref)
+            url = urljoin(listing.url or self.base_url + "/async/",
+                          href) if href else f"{self.base_url}/async/{ref.get('id')}"
+            listed_run = _child_text(ref, "runId")
+            created = _when(_child_text(ref, "creationTime"))
+            if created is not None and since is not None and created < since:
+                continue
+            if listed_run is not None and listed_run == run_id:
+                found[url] = created
+                continue
+            if listed_run is not None and adql is None:
+                continue
+            try:
+                job = self.status(url)
+            except JobLost:
+                continue  # destroyed between the list and now
+            created = _when(job.creation_time) or created
+            if since is not None and created is not None and created < since:
+                continue
+            if job.run_id == run_id or (adql is not None and job.parameters.get("QUERY") == adql):
+                found[url] = created
+        epoch = datetime.min.replace(tzinfo=UTC)
+        return sorted(found, key=lambda u: found[u] or epoch, reverse=True)
+
+    def download(self, url: str, dest: Path, *,
+                 on_progress: Callable[[int], None] | None = None) -> Downloaded:
+        """Stream ``url`` into ``dest`` in 1 MiB chunks, hashing as it goes; fsync at the end.
+
+        A dropped connection resumes with an HTTP Range request where the service advertised
+        ``Accept-Ranges: bytes`` (RFC 9110 §14), else the file restarts from zero, both a bounded
+        number of times; the sha256 always covers the whole file.  An error document where the
+        result should be raises the matching error.  On failure ``dest`` is removed.
+        """
+        dest = Path(dest)
+        state: dict[str, Any] = {"written": 0, "hash": hashlib.sha256(), "ranges": False,
+                                 "type": None}
+        handle = open(dest, "wb")  # noqa: SIM115 - closed in the finally below
+
+        def restart() -> None:
+            handle.seek(0)
+            handle.truncate()
+            state["written"] = 0
+            state["hash"] = hashlib.sha256()
+
+        def attempt() -> None:
+            headers = {"Accept-Encoding": "identity"}  # byte offsets must mean file offsets
+            resume = state["written"] > 0 and state["ranges"]
+            if resume:
+                headers["Range"] = f"bytes={state['written']}-"
+            elif state["written"]:
+                restart()
+            response = self._once("GET", url, headers=headers, stream=True, allow_redirects=True)
+            with response:
+                if response.status_code == 416 and resume:
+                    restart()
+                    state["ranges"] = False
+                    raise _BodyCut("the service refused to resume")
+                self._check(response, what="fetching the result", lost_on_404=True)
+                if response.headers.get("Accept-Ranges", "").lower() == "bytes":
+                    state["ranges"] = True
+                encoded = response.headers.get("Content-Encoding", "identity").lower() != "identity"
+                if encoded:
+                    state["ranges"] = False  # offsets of an encoded body are not file offsets
+                total = None if encoded else _int(response.headers.get("Content-Length"))
+                if response.status_code == 206:
+                    start = _range_start(response.headers.get("Content-Range"))
+                    if start != state["written"]:
+                        restart()
+                        state["ranges"] = False
+                        raise _BodyCut(f"resumed at byte {start}, not {state['written']}")
+                    total = None if total is None else start + total
+                elif state["written"]:
+                    restart()  # a 200 to a Range request: the whole body comes again
+                state["type"] = response.headers.get("Content-Type")
+                for chunk in response.iter_content(CHUNK):
+                    if not chunk:
+                        continue
+                    handle.write(chunk)
+                    state["hash"].update(chunk)
+                    state["written"] += len(chunk)
+                    if on_progress is not None:
+                        on_progress(state["written"])
+                if total is not None and state["written"] != total:
+                    raise _BodyCut(f"got {state['written']} of {total} bytes")
+
+        ok = False
+        try:
+            self._retry_call(self._retrying(), attempt, method="GET", url=url)
+            handle.flush()
+            os.fsync(handle.fileno())
+            ok = True
+        except OSError as exc:
+            raise from_transport(exc, service=self.service) from None
+        finally:
+            handle.close()
+            if not ok:
+                dest.unlink(missing_ok=True)
+        content_type = state["type"]
+        if state["written"] <= CHUNK and _looks_like_xml(content_type, dest):
+            message = _error_votable_message(dest.read_bytes())
+            if message is not None:
+                dest.unlink(missing_ok=True)
+                raise JobFailed(self._scrub(f"the result is an error document: {message}"),
+                                summary=self._scrub(message), service=self.service)
+        return Downloaded(path=dest, bytes=state["written"], sha256=state["hash"].hexdigest(),
+                          content_type=content_type)
+
+    # --- HTTP, retries and errors -------------------------------------------------------------
+
+    def _once(self, method: str, url: str, **kw: Any) -> requests.Response:
+        """One HTTP exchange; 5xx and 429 become :class:`_RetryableStatus`."""
+        kw.setdefault("timeout", self.timeout)
+        self.requests += 1
+        response = self.session.request(method, url, **kw)
+        self.requests += len(response.history)  # each redirect hop was a request too
+        if _is_transient_status(response.status_code):
+            message = _response_message(response)
+            retry_after = _retry_after(response.headers.get("Retry-After"))
+            response.close()
+            raise _RetryableStatus(response.status_code, message, retry_after)
+        return response
+
+    def _retrying(self) -> Retrying:
+        jitter = wait_exponential_jitter(initial=min(FIRST_POLL, self.max_backoff),
+                                         max=self.max_backoff, jitter=min(FIRST_POLL, self.max_backoff))
+
+        def wait(state: Any) -> float:
+            exc = state.outcome.exception() if state.outcome else None
+            if isinstance(exc, _RetryableStatus) and exc.retry_after is not None:
+                return min(exc.retry_after, self.max_backoff)  # RFC 9110 §10.2.3, capped
+            return jitter(state)
+
+        def before_sleep(state: Any) -> None:
+            exc = state.outcome.exception() if state.outcome else None
+            log.debug("retrying after %s (attempt %d of %d)", exc.__class__.__name__,
+                      state.attempt_number, self.attempts)
+
+        return Retrying(stop=stop_after_attempt(self.attempts), wait=wait, reraise=True,
+                        retry=retry_if_exception_type(_TRANSIENT), before_sleep=before_sleep)
+
+    def _retry_call(self, retrying: Retrying, fn: Callable[[], Any], *, method: str, url: str) -> Any:
+        """Run ``fn`` under ``retrying``; turn what is left after the last try into our errors."""
+        try:
+            return retrying(fn)
+        except _RetryableStatus as exc:
+            raise ServiceRefused(
+                self._scrub(f"{self.service} answered HTTP {exc.status} to {method} "
+                            f"{_public_url(url)} {self.attempts} time(s): {exc.message}"),
+                status=exc.status, service=self.service) from None
+        except _BodyCut as exc:
+            raise ServiceUnreachable(
+                self._scrub(f"the download from {_public_url(url)} kept breaking off after "
+                            f"{self.attempts} tries: {exc}"), service=self.service) from None
+        except JobdeskError:
+            raise
+        except requests.exceptions.RequestException as exc:
+            # ``from None``: the library's exception holds the request, headers and all.
+            err = from_transport(exc, service=self.service)
+            err.message = self._scrub(f"{err.message} ({method} {_public_url(url)}, "
+                                      f"{self.attempts} tries)")
+            err.args = (err.message,)
+            raise err from None
+
+    def _request(self, method: str, url: str, *, what: str, lost_on_404: bool = False,
+                 accept: tuple[int, ...] = (), **kw: Any) -> requests.Response:
+        """One logical request with retries; 4xx become ServiceRefused (404 maybe JobLost)."""
+        def attempt() -> requests.Response:
+            response = self._once(method, url, **kw)
+            if response.status_code not in accept:
+                self._check(response, what=what, lost_on_404=lost_on_404)
+            return response
+
+        return self._retry_call(self._retrying(), attempt, method=method, url=url)
+
+    def _check(self, response: requests.Response, *, what: str, lost_on_404: bool) -> None:
+        """Raise the error an HTTP status >= 400 stands for, with the service's own message."""
+        status = response.status_code
+        if status < 400:
+            return
+        message = self._scrub(_response_message(response))
+        response.close()
+        where = _public_url(response.url or "")
+        if lost_on_404 and status in (404, 410):
+            raise JobLost(f"the service no longer knows {where} (HTTP {status}, {what}): {message}",
+                          service=self.service)
+        raise ServiceRefused(f"{self.service} refused {what}: HTTP {status} from {where}: {message}",
+                             status=status, service=self.service)
+
+    def _window(self, deadline: float | None) -> int:
+        """Seconds for one blocking WAIT: the configured window, cut at the deadline."""
+        if deadline is None:
+            return self.wait_window
+        return max(0, min(self.wait_window, int(deadline - time.monotonic())))
+
+    @staticmethod
+    def _pause(seconds: float, deadline: float | None) -> None:
+        if deadline is not None:
+            seconds = min(seconds, max(0.0, deadline - time.monotonic()))
+        if seconds > 0:
+            time.sleep(seconds)
+
+    def _secrets(self) -> list[str]:
+        """What the session carries that must never be shown (header values, cookies, password)."""
+        found: list[str] = []
+        for name, value in self.session.headers.items():
+            if name.lower() in _BENIGN_HEADERS or not isinstance(value, str | bytes):
+                continue
+            text = value.decode("latin-1") if isinstance(value, bytes) else value
+            found.append(text)
+            found.extend(part for part in text.split() if len(part) >= 6)  # "Bearer <token>"
+        for cookie in self.session.cookies:
+            if cookie.value:
+                found.append(cookie.value)
+        auth = self.session.auth
+        if isinstance(auth, tuple) and len(auth) == 2 and auth[1]:
+            found.append(str(auth[1]))
+        return sorted({s for s in found if len(s) >= 4}, key=len, reverse=True)
+
+    def _scrub(self, text: str) -> str:
+        for secret in self._secrets():
+            text = text.replace(secret, "***")
+        return text
+
+
+# --- documents ----------------------------------------------------------------------------------
+
+
+def _job_status(url: str, body: bytes, service: str) -> JobStatus:
+    """Read a UWS job document (UWS 1.1 §2.2.1, schema in the UWS 1.1 appendix)."""
+    root = _parse_xml(body, service, "job document")
+    if _local(root.tag) != "job":
+        raise ServiceResponseInvalid(f"expected a UWS job document, got <{_local(root.tag)}>: "
+                                     f"{_snippet(body)}", service=service)
+    phase = _child_text(root, "phase")
+    if not phase:
+        raise ServiceResponseInvalid(f"the job document has no phase: {_snippet(body)}",
+                                     service=service)
+    parameters: dict[str, str] = {}
+    params_el = _child(root, "parameters")
+    for param in _children(params_el, "parameter") if params_el is not None else ():
+        name = param.get("id")
+        if name:
+            parameters[name.upper()] = (param.text or "").strip()
+    result_url = None
+    results_el = _child(root, "results")
+    if results_el is not None:
+        results = [(r.get("id"), _href(r)) for r in _children(results_el, "result")]
+        named = [href for rid, href in results if rid == "result" and href]
+        anyone = [href for _, href in results if href]
+        chosen = (named or anyone or [None])[0]
+        result_url = urljoin(url, chosen) if chosen else None
+    summary = _child(root, "errorSummary")
+    return JobStatus(
+        url=url, phase=phase.upper(), run_id=_child_text(root, "runId"),
+        uws_version=root.get("version"),
+        creation_time=_child_text(root, "creationTime"), start_time=_child_text(root, "startTime"),
+        end_time=_child_text(root, "endTime"), destruction=_child_text(root, "destruction"),
+        error_summary=_child_text(summary, "message") if summary is not None else None,
+        error_type=summary.get("type") if summary is not None else None,
+        result_url=result_url, parameters=parameters)
+
+
+def _parse_xml(body: bytes, service: str, what: str) -> Element:
+    try:
+        return SafeET.fromstring(body)
+    except (ParseError, DefusedXmlException, ValueError) as exc:
+        raise ServiceResponseInvalid(f"the {what} is not readable XML ({exc.__class__.__name__}): "
+                                     f"{_snippet(body)}", service=service) from None
+
+
+def _local(tag: Any) -> str:
+    return tag.rsplit("}", 1)[-1] if isinstance(tag, str) else ""
+
+
+def _children(parent: Element, name: str) -> list[Element]:
+    """Children by local name: namespaces vary (or are missing) between servers."""
+    return [c for c in parent if _local(c.tag) == name]
+
+
+def _child(parent: Element, name: str) -> Element | None:
+    found = _children(parent, name)
+    return found[0] if found else None
+
+
+def _child_text(parent: Element | None, name: str) -> str | None:
+    if parent is None:
+        return None
+    element = _child(parent, name)
+    if element is None or element.text is None:
+        return None  # absent or xsi:nil
+    text = element.text.strip()
+    return text or None
+
+
+def _href(element: Element) -> str | None:
+    href = element.get(XLINK_HREF)
+    if href is None:
+        href = next((v for k, v in element.attrib.items() if _local(k) == "href"), None)
+    return href
+
+
+def _error_votable_message(body: bytes) -> str | None:
+    """The message of an error VOTable (DALI 1.1 §4.4: INFO QUERY_STATUS=ERROR), else None."""
+    try:
+        root = SafeET.fromstring(body)
+    except (ParseError, DefusedXmlException, ValueError):
+        return None
+    if _local(root.tag) != "VOTABLE":
+        return None
+    status = [e for e in root.iter() if _local(e.tag) == "INFO" and e.get("name") == "QUERY_STATUS"]
+    errors = [e for e in status if (e.get("value") or "").upper() == "ERROR"]
+    if not errors:
+        return None
+    return " ".join((errors[-1].text or "").split()) or "the service reported an error"
+
+
+def _document_message(body: bytes, content_type: str | None) -> str:
+    """An error document's message: a VOTable's QUERY_STATUS text, or plain text as it is."""
+    message = _error_votable_message(body)
+    if message is not None:
+        return message
+    text = body.decode("utf-8", errors="replace").strip()
+    if text.startswith("<"):
+        try:
+            root = SafeET.fromstring(body)
+            text = " ".join(" ".join(root.itertext()).split())
+        except (ParseError, DefusedXmlException, ValueError):
+            pass
+    return text
+
+
+def _response_message(response: requests.Response) -> str:
+    """The service's own words for an error answer, short."""
+    try:
+        body = response.content[:65536]
+    except requests.exceptions.RequestException:
+        return "(no readable body)"
+    message = _document_message(body, response.headers.get("Content-Type"))
+    message = " ".join(re.sub(r"<[^>]{0,200}>", " ", message).split())  # strip stray HTML tags
+    return _shorten(message or response.reason or "(empty answer)")
+
+
+def _looks_like_xml(content_type: str | None, path: Path) -> bool:
+    if content_type and "xml" in content_type.lower():
+        return True
+    with open(path, "rb") as f:
+        return f.read(64).lstrip().startswith(b"<")
+
+
+# --- small helpers ------------------------------------------------------------------------------
+
+
+def _is_transient_status(status: int | None) -> bool:
+    return status is not None and (status == 429 or 500 <= status <= 599)
+
+
+def _retry_after(value: str | None) -> float | None:
+    """``Retry-After`` as seconds from now: delta-seconds or an HTTP-date (RFC 9110 §10.2.3)."""
+    if not value:
+        return None
+    value = value.strip()
+    if value.isdigit():
+        return float(value)
+    try:
+        when = email.utils.parsedate_to_datetime(value)
+    except (TypeError, ValueError):
+        return None
+    if when.tzinfo is None:
+        when = when.replace(tzinfo=UTC)
+    return max(0.0, (when - datetime.now(UTC)).total_seconds())
+
+
+def _at_least_1_1(version: str | None) -> bool:
+    if not version:
+        return False
+    try:
+        major, minor = (int(p) for p in version.strip().split(".")[:2])
+    except ValueError:
+        return False
+    return (major, minor) >= (1, 1)
+
+
+def _when(value: str | None) -> datetime | None:
+    """An ISO 8601 timestamp as an aware UTC datetime; a zone-less one is taken as UTC."""
+    if not value:
+        return None
+    try:
+        parsed = datetime.fromisoformat(value.strip().replace("Z", "+00:00"))
+    except ValueError:
+        return None
+    return parsed if parsed.tzinfo else parsed.replace(tzinfo=UTC)
+
+
+def _int(value: str | None) -> int | None:
+    try:
+        return int(value) if value is not None else None
+    except ValueError:
+        return None
+
+
+def _range_start(value: str | None) -> int | None:
+    match = re.match(r"\s*bytes\s+(\d+)-", value or "")
+    return int(match.group(1)) if match else None
+
+
+def _public_url(url: str) -> str:
+    """The URL without user:password and without its query string (which may hold a key)."""
+    try:
+        parts = urlsplit(url)
+    except ValueError:
+        return "(unparseable URL)"
+    host = parts.hostname or ""
+    if parts.port:
+        host = f"{host}:{parts.port}"
+    return urlunsplit((parts.scheme, host, parts.path, "", ""))
+
+
+def _snippet(body: bytes | str, limit: int = 200) -> str:
+    text = body.decode("utf-8", errors="replace") if isinstance(body, bytes) else body
+    return repr(_shorten(" ".join(text.split()), limit))
+
+
+def _shorten(text: str, limit: int = 300) -> str:
+    return text if len(text) <= limit else text[: limit - 3] + "..."
