@@ -184,3 +184,14 @@ def from_transport(exc: BaseException, *, service: str | None = None) -> Jobdesk
 def _short(value: object, limit: int = 300) -> str:
     text = " ".join(str(value).split())
     return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+# --- warnings ----------------------------------------------------------------------------------
+
+
+class NotRepeatableWarning(UserWarning):
+    """The query may answer differently when run again (TOP without ORDER BY, RAND, ...)."""
+
+
+class TruncatedResultWarning(UserWarning):
+    """A result was cut by MAXREC or a service limit; it holds fewer rows than the query selects."""

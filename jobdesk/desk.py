@@ -1,0 +1,539 @@
+"""``Desk`` and ``Job``: the public face, and the one place that orchestrates the other parts.
+
+A submission is first *recorded* (an index row keyed by the canonical query), then *created* on
+the service under a lease, then *driven*: waited on with UWS 1.1 WAIT or polling, and its result
+streamed into the store. Each step leaves the index in a state any other process can pick up
+from, so a killed kernel, a second kernel or the Jupyter server's poller simply carries on.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import os
+import socket
+import time
+import uuid
+import warnings
+from pathlib import Path
+
+import platformdirs
+
+from jobdesk import keys, phases, provenance, results
+from jobdesk import uploads as upload_tables
+from jobdesk.errors import (
+    CacheCorrupt, JobAborted, JobdeskError, JobFailed, JobLost, QueryRejected, ResultTruncated,
+    ResultUnavailable, ServiceUnreachable, TruncatedResultWarning, NotRepeatableWarning,
+    WaitTimeout,
+)
+from jobdesk.index import Index, this_process
+from jobdesk.remote import Remote
+from jobdesk.store import Store, stat_stamp
+
+DEFAULT_RUNNING_LIMIT = 4     # jobs per service at once; common practice, no source
+LEASE_SECONDS = 60.0          # a driver renews its lease at least this often
+DRIVE_SLICE = 20.0            # seconds of waiting on the service per lease renewal
+UNREACHABLE_SLICES = 3        # consecutive failed slices before wait() gives up (job kept)
+FAILED = frozenset({phases.ERROR, phases.ABORTED, phases.LOST, phases.ARCHIVED})
+
+
+def default_root() -> Path:
+    return Path(os.environ.get("JOBDESK_HOME") or platformdirs.user_cache_dir("jobdesk"))
+
+
+def _seconds(value) -> float | None:
+    if value is None:
+        return None
+    if isinstance(value, _dt.timedelta):
+        return value.total_seconds()
+    return float(value)
+
+
+def _has_credentials(session) -> bool:
+    if session is None:
+        return False
+    headers = {k.lower() for k in getattr(session, "headers", {}) or {}}
+    return bool(getattr(session, "auth", None) or len(getattr(session, "cookies", []) or [])
+                or headers & {"authorization", "cookie", "x-api-key"})
+
+
+class Desk:
+    """One cache root: its index, its store, and the services' sessions of this process."""
+
+    def __init__(self, root: Path | str | None = None, groups=None, *, session=None,
+                 scope: str | None = None, limits: dict[str, int] | None = None,
+                 wait_window: int = 30, attempts: int = 5, timeout: float = 30.0):
+        self.root = Path(root) if root is not None else default_root()
+        self.root.mkdir(parents=True, exist_ok=True)
+        self.index = Index(self.root / "index.sqlite")
+        self.store = Store(self.root)
+        self.store.clean_temp()
+        self.session = session
+        self.scope = scope
+        self.limits = {keys.service_id(k): v for k, v in (limits or {}).items()}
+        self.owner = this_process()
+        self._remote_options = {"wait_window": wait_window, "attempts": attempts,
+                                "timeout": timeout}
+        self._sessions: dict[str, object] = {}
+        if groups:
+            raise NotImplementedError("group caches arrive with the group-cache release")
+
+    def __repr__(self) -> str:
+        return f"Desk({str(self.root)!r})"
+
+    # --- submitting ---------------------------------------------------------------------------
+
+    def submit(self, service, adql: str, *, maxrec: int | None = None, uploads=None,
+               label: str | None = None, refresh: bool = False, max_age=None,
+               fmt: str = "votable", publish: bool = True) -> "Job":
+        """Run ``adql`` on ``service`` as an async job, or return the job that already did.
+
+        Idempotent: the same query (same key) gives the same job, running or finished, in any
+        process. ``refresh=True`` runs it anew; ``max_age`` (seconds or a timedelta) refuses
+        cached results older than that.
+        """
+        url, session = self._unwrap(service)
+        sid = keys.service_id(url)
+        if session is not None:
+            self._sessions[sid] = session
+        prepared = upload_tables.prepare(uploads)
+        canonical = keys.canonical_adql(adql)
+        for reason in canonical.warnings:
+            warnings.warn(NotRepeatableWarning(
+                f"{reason}: a cached answer may differ from a fresh run"), stacklevel=2)
+        scope = self._scope_for(sid)
+        digests = {name: sha for name, (_, sha) in prepared.items()}
+        key = keys.query_key(sid, adql, maxrec=maxrec, fmt=fmt, uploads=digests, scope=scope)
+        oldest = None if max_age is None else time.time() - _seconds(max_age)
+
+        def reuse(record: dict) -> bool:
+            if refresh or record["phase"] in FAILED:
+                return False
+            if record["phase"] == phases.COMPLETED and record.get("parquet_sha256"):
+                fresh = oldest is None or (record.get("finished") or 0) >= oldest
+                return fresh and self.store.has(record["parquet_sha256"])
+            return True  # still running somewhere: share it
+
+        for name, (data, sha) in prepared.items():
+            if not self.store.has(sha):
+                tmp = self.store.temp(".upload.vot")
+                tmp.write_bytes(data)
+                self.store.commit(tmp, sha)
+        job_id = uuid.uuid4().hex[:16]
+        fields = {
+            "id": job_id, "service": sid, "adql": adql, "canonical": canonical.text,
+            "maxrec": maxrec, "fmt": fmt, "label": label, "scope": scope, "uploads": digests,
+            "phase": phases.LOCAL, "run_id": f"jobdesk-{job_id}",
+            "notebook": os.environ.get("JPY_SESSION_NAME"), "user": provenance.current_user(),
+            "host": socket.gethostname(), "warnings": list(canonical.warnings),
+            "layer": "personal", "requests": 0,
+        }
+        record, created = self.index.claim(key, fields, reuse=reuse)
+        job = Job(self, record["id"])
+        if created:
+            self._try_start(record)
+        return job
+
+    # --- browsing -----------------------------------------------------------------------------
+
+    def jobs(self, *, phase=None, service=None, text=None, limit: int | None = 50,
+             offset: int = 0) -> list["Job"]:
+        """Job records, newest first, filtered by phase(s), service URL and free text."""
+        service = keys.service_id(service) if service else None
+        return [Job(self, r["id"], r) for r in self.index.list(
+            phase=phase, service=service, text=text, limit=limit, offset=offset)]
+
+    def count(self, *, phase=None, service=None, text=None) -> int:
+        service = keys.service_id(service) if service else None
+        return self.index.count(phase=phase, service=service, text=text)
+
+    def job(self, job_id: str) -> "Job":
+        record = self.index.get(job_id)
+        if record is None:
+            raise KeyError(f"no job {job_id!r} in {self.root}")
+        return Job(self, job_id, record)
+
+    def abort(self, job_id: str) -> "Job":
+        """Abort a job on its service (or locally, if it was never created there)."""
+        record = self.job(job_id).record
+        if record["phase"] in phases.TERMINAL:
+            return Job(self, job_id, record)
+        if record.get("job_url"):
+            remote = self._remote(record["service"])
+            try:
+                remote.abort(record["job_url"])
+            finally:
+                self.index.update(job_id, requests_add=remote.requests)
+        self.index.update(job_id, phase=phases.ABORTED, finished=time.time(),
+                          error="aborted from jobdesk", note="aborted by the user")
+        return self.job(job_id)
+
+    def forget(self, job_id: str) -> bool:
+        """Drop a record (its cached files go at the next prune if nothing else uses them)."""
+        return self.index.forget(job_id)
+
+    def cache_summary(self) -> dict:
+        entries, size = self.store.usage()
+        return {"entries": entries, "bytes": size, "root": str(self.root),
+                "layers": [{"name": "personal", "kind": "personal", "location": str(self.root),
+                            "entries": entries, "bytes": size}]}
+
+    def step(self, *, owner: str | None = None) -> int:
+        """Advance every job no live process is driving, once, without blocking; return count.
+
+        The Jupyter server's poller calls this so that jobs whose kernel died still finish.
+        """
+        owner = owner or self.owner
+        advanced = 0
+        for record in self.index.list(phase=sorted(phases.ACTIVE | {phases.COMPLETED}),
+                                      limit=None):
+            if record["phase"] == phases.COMPLETED and record.get("parquet_sha256"):
+                continue
+            try:
+                if record["phase"] == phases.LOCAL:
+                    advanced += self._try_start(record, owner=owner)["phase"] != phases.LOCAL
+                elif self.index.take_lease(record["id"], owner, LEASE_SECONDS):
+                    try:
+                        self._drive(record, deadline=None, once=True)
+                        advanced += 1
+                    finally:
+                        self.index.release(record["id"], owner)
+            except JobdeskError:
+                continue  # recorded on the job; the next pass tries again where it makes sense
+        return advanced
+
+    # --- the work -----------------------------------------------------------------------------
+
+    def _unwrap(self, service) -> tuple[str, object]:
+        """A URL string, or a pyvo TAPService (its base URL and session are used)."""
+        if isinstance(service, str):
+            return service, None
+        url = getattr(service, "baseurl", None)
+        if not url:
+            raise TypeError("service must be a TAP base URL or a pyvo TAPService")
+        return url, getattr(service, "_session", None)
+
+    def _scope_for(self, sid: str) -> str:
+        if self.scope:
+            return self.scope
+        session = self._sessions.get(sid, self.session)
+        return "authenticated" if _has_credentials(session) else "anonymous"
+
+    def _remote(self, service: str) -> Remote:
+        return Remote(service, self._sessions.get(service, self.session), **self._remote_options)
+
+    def _try_start(self, record: dict, *, owner: str | None = None) -> dict:
+        """Create a LOCAL job on its service if the per-service limit lets it start now."""
+        owner = owner or self.owner
+        job_id = record["id"]
+        limit = self.limits.get(record["service"], DEFAULT_RUNNING_LIMIT)
+        if not self.index.claim_start(job_id, limit=limit, owner=owner, seconds=LEASE_SECONDS):
+            return self.index.get(job_id) or record
+        remote = self._remote(record["service"])
+        try:
+            job_url = self._find_orphan(record, remote) if record.get("intent") else None
+            if job_url is None:
+                self.index.update(job_id, intent=time.time())
+                sent = {name: self.store.path(sha).read_bytes()
+                        for name, sha in (record.get("uploads") or {}).items()}
+                job_url = remote.create(record["adql"], maxrec=record.get("maxrec"),
+                                        fmt=record.get("fmt") or "votable", uploads=sent or None,
+                                        run_id=record["run_id"])
+                self.index.update(job_id, job_url=job_url, phase=phases.SUBMITTED,
+                                  submitted=time.time(), note="created on the service")
+                remote.run(job_url)
+            else:
+                self.index.update(job_id, job_url=job_url, phase=phases.SUBMITTED,
+                                  submitted=time.time(), note="re-attached after a crash")
+                if remote.status(job_url).phase == phases.PENDING:
+                    remote.run(job_url)
+        except JobdeskError as exc:
+            self.index.update(job_id, phase=phases.ERROR, error=str(exc), finished=time.time(),
+                              note="could not create the job")
+            raise
+        finally:
+            self.index.update(job_id, requests_add=remote.requests)
+            self.index.release(job_id, owner)
+        return self.index.get(job_id)
+
+    def _find_orphan(self, record: dict, remote: Remote) -> str | None:
+        """The server job a killed process created but never recorded, if the service has it."""
+        after = provenance.iso(record["intent"] - 120)
+        found = remote.find(run_id=record["run_id"], after=after, adql=record["adql"])
+        return found[0] if found else None
+
+    def _drive(self, record: dict, *, deadline: float | None, once: bool = False,
+               on_status=None) -> dict:
+        """Wait on the service (up to ``deadline``) and fetch the result once it is COMPLETED."""
+        job_id = record["id"]
+        remote = self._remote(record["service"])
+
+        def seen(status) -> None:
+            fields = {"phase": status.phase}
+            if status.phase == phases.EXECUTING and not record.get("started"):
+                fields["started"] = record["started"] = time.time()
+            if status.phase != record["phase"]:
+                self.index.update(job_id, **fields)
+                record["phase"] = status.phase
+            if on_status:
+                on_status(status)
+
+        try:
+            if once or record["phase"] == phases.COMPLETED:
+                status = remote.status(record["job_url"])
+                seen(status)
+            else:
+                status = remote.wait(record["job_url"], deadline=deadline, on_status=seen)
+            if status.phase == phases.COMPLETED:
+                self._fetch(record, status, remote)
+            elif status.phase == phases.ERROR:
+                message = status.error_summary or ""
+                try:
+                    detail = remote.error_detail(record["job_url"])
+                except JobdeskError:
+                    detail = ""
+                message = detail or message or "the service reported ERROR without a message"
+                self.index.update(job_id, phase=phases.ERROR, error=message,
+                                  finished=time.time())
+            elif status.phase in (phases.ABORTED, phases.ARCHIVED):
+                self.index.update(job_id, phase=status.phase, finished=time.time(),
+                                  error=status.error_summary or f"the job is {status.phase}")
+        except JobLost as exc:
+            self.index.update(job_id, phase=phases.LOST, finished=time.time(), error=str(exc),
+                              note="the service no longer knows the job")
+        finally:
+            self.index.update(job_id, requests_add=remote.requests)
+        return self.index.get(job_id)
+
+    def _fetch(self, record: dict, status, remote: Remote) -> None:
+        """Stream the result to disk, make the Parquet copy, register both atomically."""
+        job_id = record["id"]
+        url = status.result_url or record["job_url"].rstrip("/") + "/results/result"
+        raw = self.store.temp(".vot")
+        table = self.store.temp(".parquet")
+        try:
+            got = remote.download(url, raw)
+            meta = {"jobdesk_key": record["key"], "service": record["service"],
+                    "adql": record["adql"], "job_url": record["job_url"]}
+            if (record.get("fmt") or "votable").lower().startswith(("csv", "text/csv")):
+                summary = results.csv_to_parquet(raw, table, metadata=meta)
+            else:
+                summary = results.to_parquet(raw, table, metadata=meta)
+            if summary.status == "ERROR":
+                self.index.update(job_id, phase=phases.ERROR, finished=time.time(),
+                                  error=summary.message or "the result document says ERROR")
+                return
+            raw_sha, raw_path = self.store.commit(raw, got.sha256)
+            table_sha, table_path = self.store.commit(table)
+        finally:
+            raw.unlink(missing_ok=True)
+            table.unlink(missing_ok=True)
+        truncated = summary.status == "OVERFLOW"
+        server = {k: v for k, v in summary.infos.items()
+                  if k in ("server_software", "publisher", "request_date", "citation")}
+        self.index.update(job_id, phase=phases.COMPLETED, finished=time.time(),
+                          rows=summary.rows, truncated=int(truncated), result_sha256=raw_sha,
+                          result_bytes=got.bytes, result_stat=stat_stamp(raw_path),
+                          parquet_sha256=table_sha, parquet_stat=stat_stamp(table_path),
+                          server=server, note="result saved")
+        if truncated:
+            warnings.warn(TruncatedResultWarning(
+                f"job {job_id}: the result was cut at {summary.rows} rows "
+                f"(MAXREC={record.get('maxrec')}, or a service limit); it is incomplete"),
+                stacklevel=3)
+
+
+class Job:
+    """A handle on one index record; every property reads the record afresh."""
+
+    def __init__(self, desk: Desk, job_id: str, record: dict | None = None):
+        self.desk = desk
+        self.id = job_id
+        self._record = record
+
+    def __repr__(self) -> str:
+        r = self.record
+        rows = "" if r.get("rows") is None else f", rows={r['rows']}"
+        cut = ", TRUNCATED" if r.get("truncated") else ""
+        return f"<jobdesk.Job {self.id} {r['phase']}{rows}{cut} {self.title!r}>"
+
+    # --- the record ---------------------------------------------------------------------------
+
+    @property
+    def record(self) -> dict:
+        record = self.desk.index.get(self.id)
+        if record is None:
+            raise JobLost(f"job {self.id} was forgotten from this desk",
+                          hint="submit the query again")
+        self._record = record
+        return record
+
+    @property
+    def key(self) -> str:
+        return (self._record or self.record)["key"]
+
+    @property
+    def phase(self) -> str:
+        return self.record["phase"]
+
+    @property
+    def rows(self) -> int | None:
+        return self.record.get("rows")
+
+    @property
+    def truncated(self) -> bool | None:
+        value = self.record.get("truncated")
+        return None if value is None else bool(value)
+
+    @property
+    def title(self) -> str:
+        r = self._record or self.record
+        return r.get("label") or next((ln.strip() for ln in r["adql"].splitlines()
+                                       if ln.strip()), "")
+
+    @property
+    def ready(self) -> bool:
+        r = self.record
+        return r["phase"] == phases.COMPLETED and bool(r.get("parquet_sha256"))
+
+    # --- waiting ------------------------------------------------------------------------------
+
+    def wait(self, timeout: float | None = None, *, progress: bool = True) -> "Job":
+        """Block until the result is cached here; raise the matching error if the job failed.
+
+        Progress shows as a card in a notebook and a line in a terminal. ``timeout`` bounds the
+        wait (``WaitTimeout``); the job itself goes on either way.
+        """
+        deadline = None if timeout is None else time.monotonic() + timeout
+        display = _progress(self.title) if progress else None
+        t0 = time.monotonic()
+        unreachable = 0
+        record = self.record
+        try:
+            while True:
+                record = self.record
+                if display is not None:
+                    display.update(record["phase"], time.monotonic() - t0, record.get("rows"))
+                    if display.cancelled and record["phase"] not in phases.TERMINAL:
+                        self.desk.abort(self.id)
+                        continue
+                if record["phase"] == phases.COMPLETED and record.get("parquet_sha256"):
+                    return self
+                if record["phase"] in FAILED:
+                    raise self._failure(record)
+                if deadline is not None and time.monotonic() >= deadline:
+                    raise WaitTimeout(f"job {self.id} is still {record['phase']} after "
+                                      f"{timeout:g} s", service=record["service"])
+                slice_end = time.monotonic() + DRIVE_SLICE
+                if deadline is not None:
+                    slice_end = min(slice_end, deadline)
+                try:
+                    if record["phase"] == phases.LOCAL:
+                        if self.desk._try_start(record)["phase"] == phases.LOCAL:
+                            _sleep_until(slice_end, 0.5)
+                    elif self.desk.index.take_lease(self.id, self.desk.owner, LEASE_SECONDS):
+                        try:
+                            def shown(status):
+                                if display is not None:
+                                    display.update(status.phase, time.monotonic() - t0,
+                                                   record.get("rows"))
+                            self.desk._drive(record, deadline=slice_end, on_status=shown)
+                        finally:
+                            self.desk.index.release(self.id, self.desk.owner)
+                    else:
+                        _sleep_until(slice_end, 0.5)  # another process drives it: watch
+                    unreachable = 0
+                except ServiceUnreachable:
+                    unreachable += 1
+                    if unreachable >= UNREACHABLE_SLICES:
+                        raise
+                    _sleep_until(slice_end, 5.0)
+        finally:
+            if display is not None:
+                display.close(record["phase"])
+
+    def _failure(self, record: dict) -> JobdeskError:
+        message = record.get("error") or f"job {self.id} ended in {record['phase']}"
+        service = record["service"]
+        if record["phase"] == phases.ABORTED:
+            return JobAborted(message, phase=phases.ABORTED, service=service)
+        if record["phase"] in (phases.LOST, phases.ARCHIVED):
+            return JobLost(f"job {self.id}: {message}", service=service)
+        if _looks_like_query_error(message):
+            return QueryRejected(message, service=service)
+        return JobFailed(message, phase=record["phase"], summary=record.get("error"),
+                         service=service)
+
+    # --- the result ---------------------------------------------------------------------------
+
+    def _result_path(self, allow_truncated: bool) -> Path:
+        r = self.record
+        if not (r["phase"] == phases.COMPLETED and r.get("parquet_sha256")):
+            if r["phase"] in FAILED:
+                raise self._failure(r)
+            raise ResultUnavailable(f"job {self.id} has no result yet (phase {r['phase']})")
+        if r.get("truncated") and not allow_truncated:
+            raise ResultTruncated(
+                f"job {self.id}: the result was cut at {r['rows']} rows "
+                f"(MAXREC={r.get('maxrec')} or a service limit); it is not the full answer",
+                rows=r.get("rows"), service=r["service"])
+        try:
+            return self.desk.store.checked(r["parquet_sha256"], r.get("parquet_stat"))
+        except CacheCorrupt:
+            self.desk.index.update(self.id, phase=phases.LOST, parquet_sha256=None,
+                                   error="cached file failed its checksum; resubmit",
+                                   note="cache file corrupt")
+            raise
+
+    def table(self, *, allow_truncated: bool = False):
+        """The result as an astropy Table (units, UCDs and descriptions kept)."""
+        return results.load_table(self._result_path(allow_truncated))
+
+    def frame(self, *, allow_truncated: bool = False):
+        """The result as a pandas DataFrame (units and descriptions in ``.attrs``)."""
+        return results.load_frame(self._result_path(allow_truncated))
+
+    def provenance(self) -> dict:
+        """Where this result came from, as a JSON-safe dict (see ``jobdesk.provenance``)."""
+        r = self.record
+        columns = []
+        if r.get("parquet_sha256") and self.desk.store.has(r["parquet_sha256"]):
+            columns = results.columns(self.desk.store.path(r["parquet_sha256"]))
+        prov = provenance.build(r, self.desk.index.history(self.id), columns=columns)
+        prov["tables"] = list(keys.canonical_adql(r["adql"]).tables)
+        return prov
+
+    def account(self) -> str:
+        """A short plain-text account of how the table was made, for a paper's data section."""
+        return provenance.account(self.provenance())
+
+    def snippet(self) -> str:
+        """Python that loads this result in a notebook."""
+        root = "" if self.desk.root == default_root() else repr(str(self.desk.root))
+        opt = "allow_truncated=True" if self.record.get("truncated") else ""
+        return (f"from jobdesk import Desk\n\n"
+                f"table = Desk({root}).job({self.id!r}).table({opt})  # {self.title[:60]}\n")
+
+    def preview(self, rows: int = 20) -> dict:
+        """The first rows and the column descriptions, JSON-safe, without loading everything."""
+        path = self._result_path(allow_truncated=True)
+        return results.preview(path, rows=rows) | {"bytes": self.record.get("result_bytes")}
+
+
+def _progress(title: str):
+    try:
+        from jobdesk.progress import Progress
+    except ImportError:  # the display module is optional at run time
+        return None
+    return Progress.for_environment(title)
+
+
+def _sleep_until(end: float, step: float) -> None:
+    time.sleep(max(0.0, min(step, end - time.monotonic())))
+
+
+def _looks_like_query_error(message: str) -> bool:
+    """Whether a job's error text is the service refusing the ADQL itself (common practice,
+    no source: services word these differently; these fragments cover the usual ones)."""
+    text = message.lower()
+    return any(f in text for f in ("adql", "syntax", "parse", "column", "table", "unknown",
+                                   "not found", "could not resolve", "no such"))
