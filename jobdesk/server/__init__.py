@@ -1,0 +1,59 @@
+"""The jupyter_server extension: jobdesk's REST API and its background poller.
+
+Loaded by Jupyter Server (enabled by ``jupyter-config/server-config/jobdesk.json``, which the
+wheel installs) so a JupyterLab sidebar can list, inspect and act on jobs without a kernel, and
+so jobs whose kernel has died still finish and download.
+
+Settings (``ServerApp.tornado_settings``, key ``"jobdesk"``), all optional:
+
+``root``            desk root (default: ``JOBDESK_HOME`` or the user cache directory)
+``poll_interval``   seconds between two poller passes (default 5; 0 disables the poller)
+``feed_timeout``    longest a change-feed request waits, in seconds (default 25)
+``feed_interval``   seconds between two looks at the index's change token (default 1)
+"""
+
+from __future__ import annotations
+
+from jobdesk.server.handlers import ChangeFeed, DeskRunner, routes
+from jobdesk.server.poller import Poller
+
+__all__ = ["ChangeFeed", "DeskRunner", "Poller", "routes"]
+
+
+def _jupyter_server_extension_points() -> list[dict]:
+    return [{"module": "jobdesk.server"}]
+
+
+def _load_jupyter_server_extension(serverapp) -> None:
+    """Register the REST routes and start the poller inside a running Jupyter Server."""
+    from jupyter_server.utils import url_path_join
+
+    web_app = serverapp.web_app
+    options = dict(web_app.settings.get("jobdesk") or {})
+    runner = DeskRunner(root=options.get("root"), log=serverapp.log)
+    feed = ChangeFeed(runner, timeout=float(options.get("feed_timeout", 25)),
+                      interval=float(options.get("feed_interval", 1)))
+    poller = Poller(root=options.get("root"), interval=float(options.get("poll_interval", 5)),
+                    log=serverapp.log)
+    web_app.settings["jobdesk_runner"] = runner
+    web_app.settings["jobdesk_feed"] = feed
+    web_app.settings["jobdesk_poller"] = poller
+
+    base = url_path_join(web_app.settings["base_url"], "jobdesk", "api")
+    web_app.add_handlers(".*$", [(url_path_join(base, path), handler)
+                                 for path, handler in routes()])
+    poller.start()
+    _stop_on_exit(serverapp, poller, runner)
+    serverapp.log.info("jobdesk: REST API at %s, poller every %ss (desk root %s)",
+                       base, poller.interval, runner.root_label)
+
+
+def _stop_on_exit(serverapp, poller: Poller, runner: DeskRunner) -> None:
+    """Stop the poller thread and the handler threads when the server shuts down."""
+    import atexit
+
+    def stop() -> None:
+        poller.stop()
+        runner.close()
+
+    atexit.register(stop)

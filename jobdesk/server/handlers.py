@@ -1,0 +1,296 @@
+"""The REST API under ``/jobdesk/api/``: parse the request, call ``Desk``, serialise the answer.
+
+No logic lives here beyond that: listing, aborting, forgetting, previews and snippets are the
+same ``Desk`` calls a kernel makes. Every route is behind Jupyter's own authentication and XSRF
+rules (``APIHandler`` + ``tornado.web.authenticated``). Job ids are checked against a strict
+pattern before they reach the library, so no request text is ever used as a path.
+
+Desk calls may touch SQLite or the network (abort), so they run on a small thread pool and never
+block the server's event loop.
+
+Routes::
+
+    GET    jobs?phase=A,B&service=URL&text=T&limit=N&offset=M   {"jobs": [...], "total": n, ...}
+    GET    jobs/<id>                 {"job": {...}, "history": [...], "provenance": {...}|null}
+    DELETE jobs/<id>                 forget the record               {"forgotten": id}
+    POST   jobs/<id>/abort           abort on the service            {"job": {...}}
+    GET    jobs/<id>/preview?rows=N  columns, first rows, totals     (from the cache, no kernel)
+    GET    jobs/<id>/snippet         {"snippet": "python source"}
+    GET    cache                     Desk.cache_summary()
+    GET    changes?since=<token>     {"token": t, "changed": bool}; waits while nothing changed
+"""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import re
+import threading
+from collections.abc import Callable
+from concurrent.futures import ThreadPoolExecutor
+from typing import Any
+
+import tornado.web
+from jupyter_server.base.handlers import APIHandler
+
+from jobdesk import phases
+from jobdesk.errors import JobdeskError, ResultUnavailable, ServiceError
+
+JOB_ID = re.compile(r"^[0-9a-f]{6,64}$")
+KNOWN_PHASES = frozenset(phases.UWS_PHASES) | {phases.LOCAL, phases.SUBMITTED, phases.LOST}
+MAX_PAGE = 500
+MAX_PREVIEW_ROWS = 200
+
+
+class DeskRunner:
+    """One ``Desk`` for the server process and the threads its calls run on."""
+
+    def __init__(self, root: str | None = None, *, log=None, threads: int = 4):
+        self.root = root
+        self.log = log
+        self._desk = None
+        self._lock = threading.Lock()
+        self._pool = ThreadPoolExecutor(max_workers=threads, thread_name_prefix="jobdesk-api")
+
+    @property
+    def root_label(self) -> str:
+        return self.root or "default (JOBDESK_HOME or the user cache directory)"
+
+    def desk(self):
+        with self._lock:
+            if self._desk is None:
+                from jobdesk.desk import Desk  # imported late: the server starts even if it fails
+
+                self._desk = Desk(self.root)
+            return self._desk
+
+    async def run(self, fn: Callable[..., Any], *args, **kwargs) -> Any:
+        """Run ``fn(desk, *args, **kwargs)`` on the pool; the event loop stays free."""
+        loop = asyncio.get_running_loop()
+        return await loop.run_in_executor(self._pool, lambda: fn(self.desk(), *args, **kwargs))
+
+    def close(self) -> None:
+        self._pool.shutdown(wait=False, cancel_futures=True)
+
+
+def change_token(desk) -> str:
+    """The index's cheap "something changed" value (row count and newest update time)."""
+    return desk.index.version()
+
+
+class ChangeFeed:
+    """Long-poll support: one look at the change token per interval, however many listeners.
+
+    A listener whose token is stale is answered at once; the others wait until the token
+    changes or ``timeout`` passes. Only while someone waits does the feed read the index.
+    """
+
+    def __init__(self, runner: DeskRunner, *, timeout: float = 25.0, interval: float = 1.0):
+        self.runner = runner
+        self.timeout = timeout
+        self.interval = interval
+        self._token: str | None = None
+        self._waiters: set[asyncio.Future] = set()
+        self._watcher: asyncio.Task | None = None
+
+    async def token(self) -> str:
+        self._token = await self.runner.run(change_token)
+        return self._token
+
+    async def wait(self, since: str | None) -> str:
+        current = await self.token()
+        if since != current:
+            return current
+        waiter = asyncio.get_running_loop().create_future()
+        self._waiters.add(waiter)
+        if self._watcher is None or self._watcher.done():
+            self._watcher = asyncio.ensure_future(self._watch())
+        try:
+            return await asyncio.wait_for(asyncio.shield(waiter), self.timeout)
+        except asyncio.TimeoutError:
+            return self._token or current
+        finally:
+            self._waiters.discard(waiter)
+
+    async def _watch(self) -> None:
+        while self._waiters:
+            await asyncio.sleep(self.interval)
+            try:
+                token = await self.token()
+            except Exception:  # a broken index answers the waiters with the old token
+                token = self._token
+            for waiter in list(self._waiters):
+                if not waiter.done() and token is not None:
+                    waiter.set_result(token)
+
+
+class DeskHandler(APIHandler):
+    """Shared plumbing: reach the Desk, validate ids, turn our errors into JSON answers."""
+
+    @property
+    def runner(self) -> DeskRunner:
+        return self.settings["jobdesk_runner"]
+
+    def job_id(self, raw: str) -> str:
+        if not JOB_ID.match(raw or ""):
+            raise tornado.web.HTTPError(400, reason="not a job id")
+        return raw
+
+    def reply(self, payload: Any, status: int = 200) -> None:
+        self.set_status(status)
+        self.set_header("Content-Type", "application/json")
+        self.set_header("Cache-Control", "no-store")
+        self.finish(json.dumps(payload, default=str, allow_nan=False))
+
+    async def call(self, fn: Callable[..., Any], *args, **kwargs) -> Any:
+        """Run a Desk call; map unknown ids and jobdesk errors to HTTP answers."""
+        try:
+            return await self.runner.run(fn, *args, **kwargs)
+        except KeyError as exc:
+            raise _Answer(404, {"message": f"no such job: {exc.args[0] if exc.args else ''}"})
+        except JobdeskError as exc:
+            status = (409 if isinstance(exc, ResultUnavailable)
+                      else 502 if isinstance(exc, ServiceError) else 409)
+            raise _Answer(status, {"message": exc.message, "hint": exc.hint,
+                                   "error": type(exc).__name__})
+
+    def write_error(self, status_code: int, **kwargs) -> None:
+        exc = kwargs.get("exc_info", (None, None, None))[1]
+        if isinstance(exc, _Answer):
+            self.set_status(exc.status)
+            self.finish(json.dumps(exc.payload, default=str))
+            return
+        super().write_error(status_code, **kwargs)
+
+
+class _Answer(tornado.web.HTTPError):
+    """An error answer whose JSON body is already decided."""
+
+    def __init__(self, status: int, payload: dict):
+        super().__init__(status, reason=None)
+        self.payload = payload
+        self.status = status
+
+
+def _filters(handler: DeskHandler) -> dict:
+    raw = ",".join(handler.get_arguments("phase"))
+    wanted = [p.strip().upper() for p in raw.split(",") if p.strip()]
+    unknown = [p for p in wanted if p not in KNOWN_PHASES]
+    if unknown:
+        raise tornado.web.HTTPError(400, reason=f"unknown phase {unknown[0][:20]}")
+    return {"phase": wanted or None,
+            "service": handler.get_argument("service", None) or None,
+            "text": (handler.get_argument("text", None) or "").strip() or None}
+
+
+def _int_arg(handler: DeskHandler, name: str, default: int, low: int, high: int) -> int:
+    raw = handler.get_argument(name, None)
+    if raw is None or raw == "":
+        return default
+    try:
+        value = int(raw)
+    except ValueError:
+        raise tornado.web.HTTPError(400, reason=f"{name} must be an integer") from None
+    return max(low, min(high, value))
+
+
+def _list_page(desk, filters: dict, limit: int, offset: int) -> dict:
+    jobs = desk.jobs(**filters, limit=limit, offset=offset)
+    return {"jobs": [job.record for job in jobs], "total": desk.count(**filters),
+            "limit": limit, "offset": offset, "token": change_token(desk)}
+
+
+def _details(desk, job_id: str) -> dict:
+    job = desk.job(job_id)
+    history = desk.index.history(job_id)
+    try:
+        provenance, why = job.provenance(), None
+    except JobdeskError as exc:  # no result yet, or it failed: the record still shows
+        provenance, why = None, exc.message
+    return {"job": job.record, "history": history, "provenance": provenance,
+            "provenance_missing": why}
+
+
+def _abort(desk, job_id: str) -> dict:
+    desk.abort(job_id)
+    return {"job": desk.job(job_id).record}
+
+
+def _forget(desk, job_id: str) -> dict:
+    desk.job(job_id)  # KeyError (404) when unknown
+    desk.forget(job_id)
+    return {"forgotten": job_id}
+
+
+class JobsHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def get(self) -> None:
+        filters = _filters(self)
+        limit = _int_arg(self, "limit", 100, 1, MAX_PAGE)
+        offset = _int_arg(self, "offset", 0, 0, 10**9)
+        self.reply(await self.call(_list_page, filters, limit, offset))
+
+
+class JobHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def get(self, raw_id: str) -> None:
+        self.reply(await self.call(_details, self.job_id(raw_id)))
+
+    @tornado.web.authenticated
+    async def delete(self, raw_id: str) -> None:
+        self.reply(await self.call(_forget, self.job_id(raw_id)))
+
+
+class AbortHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def post(self, raw_id: str) -> None:
+        self.reply(await self.call(_abort, self.job_id(raw_id)))
+
+
+class PreviewHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def get(self, raw_id: str) -> None:
+        job_id = self.job_id(raw_id)
+        rows = _int_arg(self, "rows", 20, 0, MAX_PREVIEW_ROWS)
+        self.reply(await self.call(lambda desk: desk.job(job_id).preview(rows=rows)))
+
+
+class SnippetHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def get(self, raw_id: str) -> None:
+        job_id = self.job_id(raw_id)
+        self.reply({"snippet": await self.call(lambda desk: desk.job(job_id).snippet())})
+
+
+class CacheHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def get(self) -> None:
+        self.reply(await self.call(lambda desk: desk.cache_summary()))
+
+
+class ChangesHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def get(self) -> None:
+        since = self.get_argument("since", None)
+        feed: ChangeFeed = self.settings["jobdesk_feed"]
+        try:
+            token = await feed.wait(since)
+        except JobdeskError as exc:
+            raise _Answer(409, {"message": exc.message, "hint": exc.hint}) from exc
+        if self.request.connection.stream.closed():
+            return
+        self.reply({"token": token, "changed": token != since})
+
+
+def routes() -> list[tuple[str, type[DeskHandler]]]:
+    """Paths (relative to ``<base_url>/jobdesk/api``) and their handlers."""
+    one = r"jobs/([^/]+)"
+    return [
+        (r"jobs", JobsHandler),
+        (one, JobHandler),
+        (one + r"/abort", AbortHandler),
+        (one + r"/preview", PreviewHandler),
+        (one + r"/snippet", SnippetHandler),
+        (r"cache", CacheHandler),
+        (r"changes", ChangesHandler),
+    ]
