@@ -1,14 +1,24 @@
-"""jobdesk: durable, cached, provenance-carrying TAP query jobs for Jupyter."""
+"""jobdesk: durable, cached, provenance-carrying TAP query jobs for Jupyter.
 
+    >>> from jobdesk import Desk
+    >>> desk = Desk()
+    >>> job = desk.submit("http://127.0.0.1:8787/tap", "SELECT TOP 10 * FROM orrery.sources")
+    >>> table = job.wait().table()
+"""
+
+from jobdesk.desk import Desk, Job
 from jobdesk.errors import (
-    CacheCorrupt, JobAborted, JobdeskError, JobFailed, JobLost, QueryRejected, ResultTruncated,
-    ServiceError, ServiceRefused, ServiceUnreachable, WaitTimeout,
+    BadServiceURL, CacheCorrupt, JobAborted, JobdeskError, JobFailed, JobLost,
+    NotRepeatableWarning, QueryRejected, ResultTruncated, ResultUnavailable, ServiceError,
+    ServiceRefused, ServiceResponseInvalid, ServiceUnreachable, StorageFull,
+    TruncatedResultWarning, UploadInvalid, WaitTimeout,
 )
 
 __version__ = "0.1.0"
 
 __all__ = [
-    "CacheCorrupt", "JobAborted", "JobdeskError", "JobFailed", "JobLost", "QueryRejected",
-    "ResultTruncated", "ServiceError", "ServiceRefused", "ServiceUnreachable", "WaitTimeout",
-    "__version__",
+    "BadServiceURL", "CacheCorrupt", "Desk", "Job", "JobAborted", "JobdeskError", "JobFailed",
+    "JobLost", "NotRepeatableWarning", "QueryRejected", "ResultTruncated", "ResultUnavailable",
+    "ServiceError", "ServiceRefused", "ServiceResponseInvalid", "ServiceUnreachable",
+    "StorageFull", "TruncatedResultWarning", "UploadInvalid", "WaitTimeout", "__version__",
 ]

@@ -506,6 +506,13 @@ class Job:
         """A short plain-text account of how the table was made, for a paper's data section."""
         return provenance.account(self.provenance())
 
+    def export(self, path, *, allow_truncated: bool = False) -> list[Path]:
+        """Write the result to ``path`` (FITS, VOTable, Parquet, CSV by suffix) with its
+        provenance embedded, and a W3C PROV-JSON sidecar ``<path>.prov.json``."""
+        from jobdesk.export import export
+        table = self.table(allow_truncated=allow_truncated)
+        return export(table, self.provenance(), path)
+
     def snippet(self) -> str:
         """Python that loads this result in a notebook."""
         root = "" if self.desk.root == default_root() else repr(str(self.desk.root))

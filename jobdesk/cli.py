@@ -1,0 +1,223 @@
+"""The ``jobdesk`` command: a thin skin over ``Desk``, one subcommand per Desk method.
+
+Every listing takes ``--json`` so scripts can read it.
+"""
+
+from __future__ import annotations
+
+import argparse
+import datetime as _dt
+import json
+import sys
+
+from jobdesk import phases
+from jobdesk.errors import JobdeskError
+
+
+def _desk(args):
+    from jobdesk.desk import Desk
+    return Desk(args.root)
+
+
+def _when(ts) -> str:
+    if not ts:
+        return "-"
+    return _dt.datetime.fromtimestamp(ts).strftime("%Y-%m-%d %H:%M")
+
+
+def _size(n) -> str:
+    if n is None:
+        return "-"
+    for unit in ("B", "kB", "MB", "GB"):
+        if n < 1000:
+            return f"{n:.0f} {unit}" if unit == "B" else f"{n:.1f} {unit}"
+        n /= 1000
+    return f"{n:.1f} TB"
+
+
+def _row(job) -> str:
+    r = job.record
+    rows = "-" if r.get("rows") is None else str(r["rows"])
+    cut = " CUT" if r.get("truncated") else ""
+    return (f"{r['id']}  {r['phase']:<10} {rows:>9}{cut:<4} {_size(r.get('result_bytes')):>9}  "
+            f"{_when(r['created'])}  {job.title[:50]}")
+
+
+def cmd_list(args) -> int:
+    desk = _desk(args)
+    jobs = desk.jobs(phase=args.phase, service=args.service, text=args.text, limit=args.limit)
+    if args.json:
+        print(json.dumps([j.record for j in jobs], indent=1))
+        return 0
+    if not jobs:
+        print(f"no jobs recorded in {desk.root}")
+        return 0
+    print(f"{'id':<16}  {'phase':<10} {'rows':>9}     {'size':>9}  {'created':<16}  query")
+    for job in jobs:
+        print(_row(job))
+    total = desk.count(phase=args.phase, service=args.service, text=args.text)
+    if total > len(jobs):
+        print(f"... {total - len(jobs)} more (use --limit)")
+    return 0
+
+
+def cmd_show(args) -> int:
+    job = _desk(args).job(args.id)
+    if args.json:
+        print(json.dumps(job.provenance(), indent=1))
+        return 0
+    r = job.record
+    for name in ("id", "phase", "service", "job_url", "label", "rows", "truncated",
+                 "result_bytes", "requests", "error", "notebook"):
+        if r.get(name) is not None:
+            print(f"{name:>13}: {r[name]}")
+    print(f"{'created':>13}: {_when(r['created'])}")
+    print("         ADQL:\n    " + r["adql"].strip().replace("\n", "\n    "))
+    for h in job.desk.index.history(job.id):
+        print(f"   {_when(h['at'])}  {h['phase']:<10} {h.get('note') or ''}")
+    return 0
+
+
+def cmd_submit(args) -> int:
+    desk = _desk(args)
+    job = desk.submit(args.service, args.adql, maxrec=args.maxrec, label=args.label,
+                      refresh=args.refresh)
+    if args.wait:
+        job.wait()
+    print(json.dumps(job.record, indent=1) if args.json else _row(job))
+    return 0
+
+
+def cmd_wait(args) -> int:
+    desk = _desk(args)
+    ids = args.ids or [j.id for j in desk.jobs(phase=sorted(phases.ACTIVE | {phases.COMPLETED}),
+                                               limit=None)
+                       if not j.ready]
+    if not ids:
+        print("nothing is running")
+    failed = 0
+    for job_id in ids:
+        job = desk.job(job_id)
+        try:
+            job.wait(timeout=args.timeout)
+        except JobdeskError as exc:
+            failed += 1
+            print(f"{job_id}: {exc}", file=sys.stderr)
+        print(_row(job))
+    return 1 if failed else 0
+
+
+def cmd_abort(args) -> int:
+    print(_row(_desk(args).abort(args.id)))
+    return 0
+
+
+def cmd_forget(args) -> int:
+    gone = _desk(args).forget(args.id)
+    print(f"forgot {args.id}" if gone else f"no job {args.id}")
+    return 0 if gone else 1
+
+
+def cmd_export(args) -> int:
+    written = _desk(args).job(args.id).export(args.path, allow_truncated=args.allow_truncated)
+    for path in written:
+        print(path)
+    return 0
+
+
+def cmd_account(args) -> int:
+    print(_desk(args).job(args.id).account())
+    return 0
+
+
+def cmd_cache(args) -> int:
+    summary = _desk(args).cache_summary()
+    if args.json:
+        print(json.dumps(summary, indent=1))
+        return 0
+    for layer in summary["layers"]:
+        print(f"{layer['name']:<12} {layer['entries']:>6} files  {_size(layer['bytes']):>9}  "
+              f"{layer['location']}")
+    return 0
+
+
+def cmd_demo(args) -> int:
+    from jobdesk.demo import run
+    return run(root=args.root, rows=args.rows)
+
+
+def parser() -> argparse.ArgumentParser:
+    p = argparse.ArgumentParser(prog="jobdesk", description=__doc__.splitlines()[0])
+    p.add_argument("--root", help="cache root (default: $JOBDESK_HOME or the user cache dir)")
+    sub = p.add_subparsers(dest="command", required=True)
+
+    s = sub.add_parser("list", help="list job records, newest first")
+    s.add_argument("--phase", action="append", help="only this phase (repeatable)")
+    s.add_argument("--service", help="only jobs of this TAP service URL")
+    s.add_argument("--text", help="search labels and queries")
+    s.add_argument("--limit", type=int, default=50)
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_list)
+
+    s = sub.add_parser("show", help="one job: record and phase history (--json: provenance)")
+    s.add_argument("id")
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_show)
+
+    s = sub.add_parser("submit", help="submit an ADQL query as an async job")
+    s.add_argument("service")
+    s.add_argument("adql")
+    s.add_argument("--maxrec", type=int)
+    s.add_argument("--label")
+    s.add_argument("--refresh", action="store_true", help="run anew even if cached")
+    s.add_argument("--wait", action="store_true", help="wait for the result")
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_submit)
+
+    s = sub.add_parser("wait", help="wait for (resume) the given or all unfinished jobs")
+    s.add_argument("ids", nargs="*")
+    s.add_argument("--timeout", type=float)
+    s.set_defaults(func=cmd_wait)
+
+    s = sub.add_parser("abort", help="abort a job on its service")
+    s.add_argument("id")
+    s.set_defaults(func=cmd_abort)
+
+    s = sub.add_parser("forget", help="drop a job record")
+    s.add_argument("id")
+    s.set_defaults(func=cmd_forget)
+
+    s = sub.add_parser("export", help="write a result with provenance (.fits .vot .parquet .csv)")
+    s.add_argument("id")
+    s.add_argument("path")
+    s.add_argument("--allow-truncated", action="store_true")
+    s.set_defaults(func=cmd_export)
+
+    s = sub.add_parser("account", help="plain-text account of how a result was made")
+    s.add_argument("id")
+    s.set_defaults(func=cmd_account)
+
+    s = sub.add_parser("cache", help="what the cache holds")
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_cache)
+
+    s = sub.add_parser("demo", help="the whole story, offline, on the embedded TAP service")
+    s.add_argument("--rows", type=int, default=20000, help="size of the demo catalogue")
+    s.set_defaults(func=cmd_demo)
+    return p
+
+
+def main(argv: list[str] | None = None) -> int:
+    args = parser().parse_args(argv)
+    try:
+        return args.func(args)
+    except JobdeskError as exc:
+        print(f"jobdesk: {exc}", file=sys.stderr)
+        return 2
+    except KeyError as exc:
+        print(f"jobdesk: {exc.args[0]}", file=sys.stderr)
+        return 2
+
+
+if __name__ == "__main__":
+    sys.exit(main())
