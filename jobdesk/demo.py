@@ -19,7 +19,7 @@ from jobdesk.desk import Desk
 from jobdesk.errors import JobdeskError, ResultTruncated, TruncatedResultWarning
 
 CONE = """\
-SELECT source_id, ra, dec, mag_green, parallax
+SELECT source_id, ra, dec, mag_lime, parallax
 FROM orrery.sources
 WHERE 1 = CONTAINS(POINT('ICRS', ra, dec), CIRCLE('ICRS', 150.0, 20.0, 12.0))
 ORDER BY source_id"""
