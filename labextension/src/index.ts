@@ -1,10 +1,159 @@
-import { JupyterFrontEnd, JupyterFrontEndPlugin } from '@jupyterlab/application';
+/**
+ * The jobdesk JupyterLab extension: a "Job desk" sidebar over the server's REST API, job
+ * details in the main area, snippets into notebooks, notifications when jobs finish, and the
+ * browser half of the notebook card's Cancel button.
+ */
+import {
+  ILayoutRestorer,
+  JupyterFrontEnd,
+  JupyterFrontEndPlugin
+} from '@jupyterlab/application';
+import { Clipboard, Dialog, MainAreaWidget, Notification, showDialog } from '@jupyterlab/apputils';
+import { INotebookTracker, NotebookActions } from '@jupyterlab/notebook';
+
+import { JobDetails } from './details';
+import { firstLine, formatDuration, formatRows } from './format';
+import { jobdeskIcon } from './icon';
+import { IJobRecord, JobDeskModel } from './model';
+import { IPanelActions, JobDeskPanel } from './panel';
+
+const PLUGIN_ID = 'jobdesk-labextension:sidebar';
+
+/** Jobs that ran at least this long raise a notification when they finish (common practice, no source). */
+const NOTIFY_AFTER_SECONDS = 10;
 
 const plugin: JupyterFrontEndPlugin<void> = {
-  id: 'jobdesk-labextension:sidebar',
+  id: PLUGIN_ID,
+  description: 'A sidebar listing jobdesk query jobs, their phases, results and cache.',
   autoStart: true,
-  activate: (app: JupyterFrontEnd) => {
-    console.log('jobdesk', app.name);
+  optional: [ILayoutRestorer, INotebookTracker],
+  activate: (
+    app: JupyterFrontEnd,
+    restorer: ILayoutRestorer | null,
+    notebooks: INotebookTracker | null
+  ) => {
+    const model = new JobDeskModel();
+    const openDetails = new Map<string, MainAreaWidget<JobDetails>>();
+
+    const title = (job: IJobRecord) => job.label || firstLine(job.adql).slice(0, 60) || job.id;
+
+    const actions: IPanelActions = {
+      openDetails(job) {
+        let widget = openDetails.get(job.id);
+        if (!widget || widget.isDisposed) {
+          const content = new JobDetails(model, actions, job.id);
+          widget = new MainAreaWidget({ content });
+          widget.id = content.id;
+          widget.title.icon = jobdeskIcon;
+          widget.title.label = content.title.label;
+          content.title.changed.connect(() => (widget!.title.label = content.title.label));
+          openDetails.set(job.id, widget);
+          app.shell.add(widget, 'main');
+        }
+        app.shell.activateById(widget.id);
+      },
+      async insertSnippet(job) {
+        const panel = notebooks?.currentWidget;
+        if (!panel) {
+          Notification.warning('Open a notebook first: the snippet goes below its active cell.', {
+            autoClose: 5000
+          });
+          return;
+        }
+        try {
+          const code = await model.snippet(job.id);
+          NotebookActions.insertBelow(panel.content);
+          panel.content.activeCell?.model.sharedModel.setSource(code.trimEnd());
+          app.shell.activateById(panel.id);
+        } catch (err) {
+          Notification.error(`Could not get the snippet: ${(err as Error).message}`);
+        }
+      },
+      async copySnippet(job) {
+        try {
+          Clipboard.copyToSystem(await model.snippet(job.id));
+          Notification.info('Snippet copied.', { autoClose: 2000 });
+        } catch (err) {
+          Notification.error(`Could not get the snippet: ${(err as Error).message}`);
+        }
+      },
+      async abort(job) {
+        try {
+          const after = await model.abort(job.id);
+          Notification.info(`Aborted: ${title(after)}`, { autoClose: 4000 });
+        } catch (err) {
+          Notification.error(`Abort failed: ${(err as Error).message}`);
+        }
+      },
+      async forget(job) {
+        const answer = await showDialog({
+          title: 'Forget this job?',
+          body:
+            `“${title(job)}” leaves the index. The service job is not touched; ` +
+            'a cached result stays until the cache is pruned.',
+          buttons: [Dialog.cancelButton(), Dialog.warnButton({ label: 'Forget' })]
+        });
+        if (!answer.button.accept) {
+          return;
+        }
+        try {
+          await model.forget(job.id);
+          openDetails.get(job.id)?.dispose();
+        } catch (err) {
+          Notification.error(`Forget failed: ${(err as Error).message}`);
+        }
+      }
+    };
+
+    const panel = new JobDeskPanel(model, actions);
+    panel.title.icon = jobdeskIcon;
+    panel.title.label = 'Job desk';
+    app.shell.add(panel, 'left', { rank: 600 });
+    if (restorer) {
+      restorer.add(panel, 'jobdesk-sidebar');
+    }
+
+    model.finished.connect((_, job) => {
+      const ran = (job.finished || Date.now() / 1000) - (job.started || job.created);
+      if (ran < NOTIFY_AFTER_SECONDS && job.phase === 'COMPLETED') {
+        return;
+      }
+      const words = `${title(job)} — ${job.phase.toLowerCase()} after ${formatDuration(ran)}` +
+        (job.rows !== null && job.rows !== undefined ? `, ${formatRows(job.rows)}` : '');
+      const options = {
+        autoClose: 8000 as number | false,
+        actions: [{ label: 'Details', callback: () => actions.openDetails(job) }]
+      };
+      if (job.phase === 'COMPLETED') {
+        Notification.success(`Job finished: ${words}`, options);
+      } else {
+        Notification.warning(`Job ended: ${words}`, options);
+      }
+    });
+
+    // The notebook card's Cancel button: the kernel is busy inside wait() and cannot receive
+    // the click, so the browser aborts the job through the REST API (see jobdesk/progress.py).
+    document.addEventListener(
+      'click',
+      event => {
+        const target = (event.target as HTMLElement | null)?.closest?.('.jobdesk-cancel');
+        const jobClass = target && Array.from(target.classList).find(c => c.startsWith('jobdesk-job-'));
+        if (jobClass) {
+          const id = jobClass.slice('jobdesk-job-'.length);
+          model.abort(id).catch(err => Notification.error(`Abort failed: ${err.message}`));
+        }
+      },
+      true
+    );
+
+    app.commands.addCommand('jobdesk:open', {
+      label: 'Show the Job desk',
+      icon: jobdeskIcon,
+      execute: () => app.shell.activateById(panel.id)
+    });
+
+    void app.restored.then(() => model.start());
   }
 };
+
 export default plugin;

@@ -1,0 +1,262 @@
+"""Showing a job's progress while ``Job.wait()`` blocks: a card in a notebook, a line in a terminal.
+
+Why a separate module: the Desk decides *what* happened to a job; this module only decides how
+to show it wherever the code runs, and how the user can ask to stop.
+
+API (what ``Job.wait`` calls)::
+
+    progress = Progress.for_environment(job_label, job_id=None)   # card, line or nothing
+    progress.update(phase, elapsed_seconds, rows, note="")         # as often as you like
+    if progress.cancelled: ...                                     # the user asked to abort
+    progress.close(final_phase)                                    # once, when waiting ends
+
+``for_environment`` picks:
+
+* ``CardProgress`` inside a Jupyter kernel with ipywidgets: a small card with the label, a
+  phase badge, elapsed time (ticking every second on a daemon thread, so it moves even while
+  the Desk waits on the service), rows, a note, an indeterminate bar and a "Cancel job" button.
+  The kernel's main thread never blocks on the card, so an interrupt (``Kernel > Interrupt``)
+  still stops ``wait()`` at once. While a cell runs, the kernel cannot receive the button's
+  click, so the button also carries the job id in its CSS classes: the jobdesk lab extension
+  sees the click in the browser and aborts the job through the server's REST API; ``wait()``
+  then reads ABORTED from the index and stops. Where the kernel does get the click (an async
+  cell, or no lab extension) ``cancelled`` becomes True and ``wait()`` aborts the job itself.
+* ``LineProgress`` when stderr is a terminal: one line rewritten in place.
+* ``LogProgress`` otherwise (pipes, CI logs): one line per phase change, nothing in between.
+
+``cancel_hooks`` is a list of callables run once when the user presses Cancel.
+"""
+
+from __future__ import annotations
+
+import sys
+import threading
+import time
+from collections.abc import Callable
+
+TERMINAL_PHASES = frozenset({"COMPLETED", "ERROR", "ABORTED", "ARCHIVED", "LOST"})
+
+
+def format_elapsed(seconds: float) -> str:
+    """``42 s``, ``3 min 07 s``, ``2 h 05 min``: short enough for a badge or a status line."""
+    seconds = max(0, int(seconds))
+    if seconds < 60:
+        return f"{seconds} s"
+    minutes, seconds = divmod(seconds, 60)
+    if minutes < 60:
+        return f"{minutes} min {seconds:02d} s"
+    hours, minutes = divmod(minutes, 60)
+    return f"{hours} h {minutes:02d} min"
+
+
+def _in_kernel() -> bool:
+    shell = sys.modules.get("IPython")
+    if shell is None:
+        return False
+    try:
+        ip = shell.get_ipython()
+    except AttributeError:
+        return False
+    return ip is not None and getattr(ip, "kernel", None) is not None
+
+
+class Progress:
+    """Base class: remembers the state, runs cancel hooks; shows nothing."""
+
+    def __init__(self, label: str, job_id: str | None = None):
+        self.label = label
+        self.job_id = job_id
+        self.phase: str | None = None
+        self.elapsed = 0.0
+        self.rows: int | None = None
+        self.note = ""
+        self.closed = False
+        self.cancel_hooks: list[Callable[[], None]] = []
+        self._cancelled = threading.Event()
+
+    @staticmethod
+    def for_environment(label: str, job_id: str | None = None) -> "Progress":
+        """The right display for where the code runs (see the module docstring)."""
+        if _in_kernel():
+            try:
+                return CardProgress(label, job_id)
+            except ImportError:  # no ipywidgets in this kernel
+                pass
+        if hasattr(sys.stderr, "isatty") and sys.stderr.isatty():
+            return LineProgress(label, job_id)
+        return LogProgress(label, job_id)
+
+    @property
+    def cancelled(self) -> bool:
+        return self._cancelled.is_set()
+
+    def cancel(self) -> None:
+        """The user asked to stop the job: remember it and run the hooks once."""
+        if self._cancelled.is_set():
+            return
+        self._cancelled.set()
+        for hook in self.cancel_hooks:
+            hook()
+
+    def update(self, phase: str, elapsed: float, rows: int | None, note: str = "") -> None:
+        changed = phase != self.phase
+        self.phase, self.elapsed, self.rows, self.note = phase, elapsed, rows, note
+        self._show(changed)
+
+    def close(self, final_phase: str | None = None) -> None:
+        if self.closed:
+            return
+        self.closed = True
+        if final_phase:
+            self.phase = final_phase
+        self._finish()
+
+    def summary(self) -> str:
+        """``EXECUTING · 12 s · 3,000 rows · note`` — the words every display shows."""
+        parts = [self.phase or "…", format_elapsed(self.elapsed)]
+        if self.rows is not None:
+            parts.append(f"{self.rows:,} rows")
+        if self.note:
+            parts.append(self.note)
+        return " · ".join(parts)
+
+    def _show(self, phase_changed: bool) -> None:
+        pass
+
+    def _finish(self) -> None:
+        pass
+
+
+class LogProgress(Progress):
+    """One line per phase change, for logs and pipes."""
+
+    def __init__(self, label: str, job_id: str | None = None, stream=None):
+        super().__init__(label, job_id)
+        self.stream = stream or sys.stderr
+
+    def _show(self, phase_changed: bool) -> None:
+        if phase_changed:
+            print(f"jobdesk: {self.label[:60]}: {self.summary()}", file=self.stream, flush=True)
+
+    def _finish(self) -> None:
+        print(f"jobdesk: {self.label[:60]}: {self._closing()}", file=self.stream, flush=True)
+
+    def _closing(self) -> str:
+        if self.phase in TERMINAL_PHASES:
+            return self.summary()
+        return f"stopped watching at {self.phase}; the job goes on (its record is kept)"
+
+
+class LineProgress(LogProgress):
+    """One status line rewritten in place on a terminal."""
+
+    def _show(self, phase_changed: bool) -> None:
+        text = f"jobdesk: {self.label[:40]}: {self.summary()}"
+        self.stream.write("\r" + text[:110].ljust(110))
+        self.stream.flush()
+
+    def _finish(self) -> None:
+        self.stream.write("\r" + f"jobdesk: {self.label[:40]}: {self._closing()}"[:110].ljust(110)
+                          + "\n")
+        self.stream.flush()
+
+
+class CardProgress(Progress):
+    """An ipywidgets card shown in the notebook output (see the module docstring)."""
+
+    TICK_SECONDS = 1.0
+
+    def __init__(self, label: str, job_id: str | None = None):
+        import ipywidgets as w
+        from IPython.display import display
+
+        super().__init__(label, job_id)
+        self._started = time.monotonic()
+        self._lock = threading.Lock()
+        self.title = w.HTML(value=_html_text(label[:120]))
+        self.title.add_class("jobdesk-card-title")
+        self.badge = w.HTML(value=_badge("…"))
+        self.clock = w.Label(value="0 s")
+        self.count = w.Label(value="")
+        self.message = w.Label(value="")
+        self.bar = w.IntProgress(value=0, min=0, max=100, bar_style="info",
+                                 layout=w.Layout(width="160px"))
+        self.button = w.Button(description="Cancel job", icon="stop", button_style="warning",
+                               tooltip="Abort this job on its service",
+                               layout=w.Layout(width="auto"))
+        self.button.add_class("jobdesk-cancel")
+        if job_id:
+            self.button.add_class(f"jobdesk-job-{job_id}")
+        self.button.on_click(lambda _button: self.cancel())
+        row = w.HBox([self.badge, self.clock, self.count, self.bar, self.button],
+                     layout=w.Layout(align_items="center", gap="12px"))
+        self.card = w.VBox([self.title, row, self.message],
+                           layout=w.Layout(border="1px solid var(--jp-border-color2, #ccc)",
+                                           padding="6px 10px", margin="4px 0",
+                                           width="fit-content"))
+        self.card.add_class("jobdesk-card")
+        display(self.card)
+        self._stop = threading.Event()
+        self._ticker = threading.Thread(target=self._tick, name="jobdesk-card", daemon=True)
+        self._ticker.start()
+
+    def cancel(self) -> None:
+        self.button.disabled = True
+        self.button.description = "Cancelling…"
+        super().cancel()
+
+    def _tick(self) -> None:
+        # The elapsed time keeps moving between the Desk's updates; runs off the main thread,
+        # so the kernel stays interruptible.
+        while not self._stop.wait(self.TICK_SECONDS):
+            with self._lock:
+                base = self.elapsed + (time.monotonic() - self._updated_at)
+                self.clock.value = format_elapsed(base)
+                self.bar.value = (self.bar.value + 10) % 110
+
+    def _show(self, phase_changed: bool) -> None:
+        with self._lock:
+            self._updated_at = time.monotonic()
+            if phase_changed:
+                self.badge.value = _badge(self.phase or "…")
+            self.clock.value = format_elapsed(self.elapsed)
+            self.count.value = "" if self.rows is None else f"{self.rows:,} rows"
+            self.message.value = self.note
+
+    _updated_at = 0.0
+
+    def _finish(self) -> None:
+        self._stop.set()
+        with self._lock:
+            self.badge.value = _badge(self.phase or "…")
+            self.bar.layout.display = "none"
+            self.button.layout.display = "none"
+            self.clock.value = format_elapsed(self.elapsed)
+            self.count.value = "" if self.rows is None else f"{self.rows:,} rows"
+            if self.phase not in TERMINAL_PHASES:
+                self.message.value = (f"Stopped watching at {self.phase}; the job goes on and "
+                                      "its record is kept.")
+
+
+_BADGE_COLOURS = {  # var(--jp-...) keeps the badge readable in light and dark themes
+    "COMPLETED": "var(--jp-success-color1, #2e7d32)",
+    "ERROR": "var(--jp-error-color1, #c62828)",
+    "ABORTED": "var(--jp-warn-color1, #e65100)",
+    "LOST": "var(--jp-error-color2, #c62828)",
+    "EXECUTING": "var(--jp-brand-color1, #1565c0)",
+}
+
+
+def _html_text(text: str) -> str:
+    import html
+
+    return f"<b>{html.escape(text)}</b>"
+
+
+def _badge(phase: str) -> str:
+    import html
+
+    colour = _BADGE_COLOURS.get(phase, "var(--jp-layout-color3, #757575)")
+    return (f'<span style="border:1px solid {colour};color:{colour};border-radius:3px;'
+            f'padding:0 6px;font-size:var(--jp-ui-font-size0, 11px);font-weight:600">'
+            f"{html.escape(phase)}</span>")

@@ -1,0 +1,197 @@
+/**
+ * One job in full, in the main area: the whole query, the phase history, a preview of the
+ * cached result (read by the server from the cache, no kernel involved) and the provenance.
+ */
+import { Widget } from '@lumino/widgets';
+
+import {
+  TERMINAL,
+  firstLine,
+  formatBytes,
+  formatRows,
+  formatWhen,
+  hostOf
+} from './format';
+import { IJobDetails, IJobRecord, IPreview, JobDeskModel } from './model';
+import { IPanelActions, phaseBadge } from './panel';
+
+export class JobDetails extends Widget {
+  constructor(
+    private readonly model: JobDeskModel,
+    private readonly actions: IPanelActions,
+    readonly jobId: string
+  ) {
+    super();
+    this.addClass('jd-details');
+    this.id = `jobdesk-job-${jobId}`;
+    this.title.label = `Job ${jobId.slice(0, 8)}`;
+    this.title.closable = true;
+    this.node.tabIndex = -1;
+    void this.load();
+  }
+
+  async load(): Promise<void> {
+    this.node.replaceChildren(para('jd-muted', 'Loading…'));
+    let details: IJobDetails;
+    try {
+      details = await this.model.details(this.jobId);
+    } catch (err) {
+      this.node.replaceChildren(para('jd-error', (err as Error).message));
+      return;
+    }
+    const job = details.job;
+    this.title.label = job.label || firstLine(job.adql).slice(0, 30) || this.title.label;
+    this.node.replaceChildren(
+      this.header(job),
+      section('Query', pre(job.adql)),
+      section('Facts', this.facts(job)),
+      section('Phase history', this.history(details))
+    );
+    if (job.phase === 'COMPLETED' && job.parquet_sha256) {
+      const holder = section('Preview', para('jd-muted', 'Reading the cached result…'));
+      this.node.append(holder);
+      this.model.preview(this.jobId).then(
+        preview => holder.replaceChildren(heading('Preview'), previewTable(preview)),
+        err => holder.replaceChildren(heading('Preview'), para('jd-error', err.message))
+      );
+    }
+    const prov = details.provenance
+      ? pre(JSON.stringify(details.provenance, null, 2))
+      : para('jd-muted', details.provenance_missing || 'No provenance yet.');
+    const block = document.createElement('details');
+    const summary = document.createElement('summary');
+    summary.textContent = 'Provenance (JSON)';
+    block.append(summary, prov);
+    this.node.append(block);
+  }
+
+  private header(job: IJobRecord): HTMLElement {
+    const head = document.createElement('div');
+    head.className = 'jd-details-head';
+    const title = document.createElement('h2');
+    title.textContent = job.label || firstLine(job.adql);
+    const tools = document.createElement('div');
+    tools.className = 'jd-row-tools';
+    if (job.phase === 'COMPLETED') {
+      tools.append(
+        action('Insert snippet', () => this.actions.insertSnippet(job)),
+        action('Copy snippet', () => this.actions.copySnippet(job))
+      );
+    }
+    if (!TERMINAL.has(job.phase)) {
+      tools.append(action('Abort', () => this.actions.abort(job)));
+    }
+    tools.append(action('Reload', () => void this.load()));
+    head.append(phaseBadge(job.phase), title, tools);
+    return head;
+  }
+
+  private facts(job: IJobRecord): HTMLElement {
+    const rows: Array<[string, string]> = [
+      ['Job id', job.id],
+      ['Service', `${hostOf(job.service)} (${job.service})`],
+      ['Service job', job.job_url || '—'],
+      ['Recorded', formatWhen(job.created)],
+      ['Started', formatWhen(job.started)],
+      ['Finished', formatWhen(job.finished)],
+      ['Rows', formatRows(job.rows) + (job.truncated ? ' — TRUNCATED, not the full answer' : '')],
+      ['Size', formatBytes(job.result_bytes)],
+      ['MAXREC', job.maxrec === null || job.maxrec === undefined ? 'service default' : String(job.maxrec)],
+      ['Cache', job.parquet_sha256 ? `${job.layer || 'personal'} cache` : 'not cached'],
+      ['Notebook', job.notebook || '—'],
+      ['Submitted by', [job.user, job.host].filter(Boolean).join(' on ') || '—'],
+      ['Error', job.error || '—'],
+      ['Warnings', (job.warnings || []).join('; ') || '—']
+    ];
+    const table = document.createElement('table');
+    table.className = 'jd-facts';
+    for (const [name, value] of rows) {
+      const tr = table.insertRow();
+      const th = document.createElement('th');
+      th.textContent = name;
+      tr.append(th);
+      tr.insertCell().textContent = value;
+    }
+    return table;
+  }
+
+  private history(details: IJobDetails): HTMLElement {
+    const list = document.createElement('ol');
+    list.className = 'jd-history';
+    for (const step of details.history) {
+      const item = document.createElement('li');
+      item.append(phaseBadge(step.phase), ` ${formatWhen(step.at)}${step.note ? ` — ${step.note}` : ''}`);
+      list.append(item);
+    }
+    return list;
+  }
+}
+
+function previewTable(preview: IPreview): HTMLElement {
+  const wrap = document.createElement('div');
+  wrap.className = 'jd-preview';
+  wrap.append(
+    para(
+      'jd-muted',
+      `${formatRows(preview.total_rows)} · ${formatBytes(preview.bytes)} · first ${preview.rows.length} shown`
+    )
+  );
+  const table = document.createElement('table');
+  const head = table.createTHead().insertRow();
+  for (const column of preview.columns) {
+    const th = document.createElement('th');
+    th.textContent = column.name;
+    if (column.unit) {
+      const unit = document.createElement('span');
+      unit.className = 'jd-unit';
+      unit.textContent = ` [${column.unit}]`;
+      th.append(unit);
+    }
+    th.title = [column.description, column.ucd, column.datatype].filter(Boolean).join('\n');
+    head.append(th);
+  }
+  const body = table.createTBody();
+  for (const values of preview.rows) {
+    const tr = body.insertRow();
+    for (const value of values) {
+      tr.insertCell().textContent = value === null || value === undefined ? '—' : String(value);
+    }
+  }
+  wrap.append(table);
+  return wrap;
+}
+
+function section(name: string, content: HTMLElement): HTMLElement {
+  const node = document.createElement('section');
+  node.append(heading(name), content);
+  return node;
+}
+
+function heading(name: string): HTMLElement {
+  const h = document.createElement('h3');
+  h.textContent = name;
+  return h;
+}
+
+function pre(value: string): HTMLElement {
+  const node = document.createElement('pre');
+  node.className = 'jd-pre';
+  node.textContent = value;
+  return node;
+}
+
+function para(className: string, value: string): HTMLElement {
+  const node = document.createElement('p');
+  node.className = className;
+  node.textContent = value;
+  return node;
+}
+
+function action(label: string, onClick: () => void): HTMLButtonElement {
+  const node = document.createElement('button');
+  node.type = 'button';
+  node.className = 'jd-button';
+  node.textContent = label;
+  node.addEventListener('click', onClick);
+  return node;
+}
