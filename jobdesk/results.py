@@ -9,6 +9,7 @@ file alone says what it holds; loading it back is a near zero-copy Arrow -> nump
 
 from __future__ import annotations
 
+import base64
 import binascii
 import json
 import os
@@ -563,9 +564,8 @@ class _Reader:
         got = len(self.cells) - self.row_start
         want = len(self.fields)
         if got != want:
-            if got > want:
-                raise ServiceResponseInvalid(f"row {self.rows + 1} has {got} cells for {want} FIELDs")
-            self.cells.extend([""] * (want - got))   # astropy pads short rows the same way
+            # VOTable 1.4 §5.2: one TD per FIELD; the reference reader refuses other rows too.
+            raise ServiceResponseInvalid(f"row {self.rows + 1} has {got} cells for {want} FIELDs")
         self.rows += 1
         if len(self.cells) >= self.batch_rows * want:
             self._flush_text()
@@ -610,8 +610,8 @@ class _Reader:
         # DALI 1.1 §4.4.1: the QUERY_STATUS INFOs of the results RESOURCE count, the last one
         # wins (OVERFLOW follows the TABLE); without a typed resource, any RESOURCE, then any INFO.
         in_results = [s for s in self.statuses if s[0] == "results"]
-        in_resource = [s for s in self.statuses if s[0] not in ("VOTABLE", "meta", "TABLE")]
-        chosen = (in_results or in_resource or self.statuses or [("", "OK", None)])[-1]
+        elsewhere = [s for s in self.statuses if s[0] != "meta"]
+        chosen = (in_results or elsewhere or [("", "OK", None)])[-1]
         _, status, message = chosen
         return ResultSummary(rows=self.rows, status=status or "OK", message=message,
                              fields=[f.describe() for f in self.fields], infos=dict(self.infos))
@@ -634,6 +634,8 @@ def _read(source: IO[bytes], sink) -> tuple[ResultSummary, list[_Field]]:
             seen += len(chunk)
             parser.feed(chunk)
             reader.drain_stream()
+        if seen == 0:
+            raise ServiceResponseInvalid("the result document is empty (0 bytes)")
         parser.close()
     except ServiceResponseInvalid:
         raise
@@ -672,8 +674,9 @@ class _Counter:
 class _ParquetSink:
     wants_values = True
 
-    def __init__(self, path: Path):
+    def __init__(self, path: Path, metadata: dict[str, str]):
         self.path = path
+        self.metadata = metadata
         self.writer: pq.ParquetWriter | None = None
         self.schema: pa.Schema | None = None
 
@@ -687,7 +690,7 @@ class _ParquetSink:
             seen[name] = k + 1
             af = f.arrow_field()
             arrow_fields.append(af if k == 0 else af.with_name(f"{name}_{k}"))
-        self.schema = pa.schema(arrow_fields)
+        self.schema = pa.schema(arrow_fields, metadata=self.metadata)
         self.writer = pq.ParquetWriter(self.path, self.schema, compression="zstd")
 
     def write(self, cols: list[pa.Array], rows: int) -> None:
@@ -699,6 +702,11 @@ class _ParquetSink:
     def finish(self, fields: list[_Field], extra: dict[str, str]) -> None:
         if self.writer is None:
             self.begin(fields)
+        # The summary is known only at the end (OVERFLOW follows the rows), so it goes into the
+        # file's key-value metadata at close, together with the Arrow schema carrying it too,
+        # so that pyarrow readers see it as schema metadata.
+        full = self.schema.with_metadata({**self.metadata, **extra})
+        extra = {**extra, "ARROW:schema": base64.b64encode(full.serialize().to_pybytes()).decode()}
         self.writer.add_key_value_metadata(extra)
         self.writer.close()
 
@@ -728,13 +736,14 @@ def to_parquet(votable: Path, parquet: Path, *,
     """
     parquet = Path(parquet)
     tmp = parquet.with_name(f".{parquet.name}.{os.getpid()}.partial")
-    sink = _ParquetSink(tmp)
+    user = {k: str(v) for k, v in (metadata or {}).items()
+            if not k.startswith("ARROW:") and k not in (SUMMARY_KEY, METADATA_KEY)}
+    sink = _ParquetSink(tmp, user)
     try:
         with open(votable, "rb") as fh:
             reader_summary, fields = _read(fh, sink)
-        extra = {k: str(v) for k, v in (metadata or {}).items() if not k.startswith("ARROW:")}
-        extra[SUMMARY_KEY] = reader_summary.to_json()
-        extra[METADATA_KEY] = json.dumps(metadata or {}, sort_keys=True)
+        extra = {SUMMARY_KEY: reader_summary.to_json(),
+                 METADATA_KEY: json.dumps(user, sort_keys=True)}
         sink.finish(fields, extra)
         os.replace(tmp, parquet)
     except BaseException:
@@ -744,17 +753,20 @@ def to_parquet(votable: Path, parquet: Path, *,
     return reader_summary
 
 
+def _file_meta(parquet: Path) -> dict[bytes, bytes]:
+    # the Parquet footer's key-value metadata: any Parquet reader shows it
+    return pq.read_metadata(parquet).metadata or {}
+
+
 def read_metadata(parquet: Path) -> dict[str, str]:
     """The ``metadata`` given to :func:`to_parquet` (e.g. the provenance record)."""
-    meta = pq.read_schema(parquet).metadata or {}
-    raw = meta.get(METADATA_KEY.encode())
+    raw = _file_meta(parquet).get(METADATA_KEY.encode())
     return json.loads(raw) if raw else {}
 
 
 def read_summary(parquet: Path) -> ResultSummary:
     """The scan summary stored in a Parquet copy."""
-    meta = pq.read_schema(parquet).metadata or {}
-    return ResultSummary.from_json(meta[SUMMARY_KEY.encode()].decode())
+    return ResultSummary.from_json(_file_meta(parquet)[SUMMARY_KEY.encode()].decode())
 
 
 def error_message(body: bytes) -> str | None:
@@ -778,7 +790,8 @@ def load_table(parquet: Path):
     """The result as an astropy Table: units, descriptions and UCDs kept, nulls masked."""
     from astropy.table import Column, MaskedColumn, Table
 
-    data = pq.read_table(parquet)
+    pf = pq.ParquetFile(parquet)
+    data = pf.read()
     cols = []
     for af, chunked in zip(data.schema, data.columns):
         meta = _field_meta(af)
@@ -795,7 +808,7 @@ def load_table(parquet: Path):
             col = Column(values, copy=False, meta=col_meta, **kw)
         cols.append(col)
     table = Table(cols, copy=False)
-    table.meta.update(_table_meta(data.schema))
+    table.meta.update(_table_meta(pf.metadata.metadata))
     return table
 
 
@@ -810,8 +823,8 @@ def _unit(text: str):
     return unit
 
 
-def _table_meta(schema: pa.Schema) -> dict:
-    meta = schema.metadata or {}
+def _table_meta(meta: dict[bytes, bytes] | None) -> dict:
+    meta = meta or {}
     out: dict[str, Any] = {}
     if SUMMARY_KEY.encode() in meta:
         s = json.loads(meta[SUMMARY_KEY.encode()])
@@ -897,7 +910,8 @@ def load_frame(parquet: Path):
     """The result as a pandas DataFrame; units and descriptions in ``df.attrs``."""
     import pandas as pd
 
-    data = pq.read_table(parquet)
+    pf = pq.ParquetFile(parquet)
+    data = pf.read()
     nullable_ints = {}
     for af, chunked in zip(data.schema, data.columns):
         if pa.types.is_integer(af.type) and chunked.null_count:
@@ -912,7 +926,7 @@ def load_frame(parquet: Path):
     frame.attrs["descriptions"] = {k: v["description"] for k, v in attrs_fields.items()
                                    if v.get("description")}
     frame.attrs["ucds"] = {k: v["ucd"] for k, v in attrs_fields.items() if v.get("ucd")}
-    frame.attrs.update(_table_meta(data.schema))
+    frame.attrs.update(_table_meta(pf.metadata.metadata))
     return frame
 
 
