@@ -193,6 +193,8 @@ def check_supported(tree: exp.Expression) -> None:
                 raise _refuse(node, f"unknown function {node.name!r}: not an ADQL 2.1 function "
                                     "supported here")
             continue
+        if isinstance(node, exp.Array):
+            raise _refuse(node, "square brackets are not ADQL; delimit identifiers with double quotes")
         if not isinstance(node, _ALLOWED_NODES):
             if isinstance(node, exp.Func):
                 raise _refuse(node, f"function {node.sql(dialect=_Adql).split('(')[0]} is not "
@@ -692,6 +694,36 @@ def _point_region(node) -> tuple[tuple, exp.Expression] | None:
     return None
 
 
+def _circle_parts(node) -> list[exp.Expression] | None:
+    if _is_call(node, "CIRCLE"):
+        args = _geom_args(node)
+        if len(args) == 3:
+            return args
+    return None
+
+
+def _fast_circles(node) -> tuple[exp.Expression, tuple[float, float] | None] | None:
+    """INTERSECTS/CONTAINS of two CIRCLE(...) calls, as one function of six numbers."""
+    if isinstance(node, exp.Contains):
+        a, b, name = node.this, node.expression, "adql_circle_in_circle"
+    elif _is_call(node, "INTERSECTS") and len(node.expressions) == 2:
+        (a, b), name = node.expressions, "adql_circles_intersect"
+    else:
+        return None
+    c1, c2 = _circle_parts(a), _circle_parts(b)
+    if not c1 or not c2:
+        return None
+    new = exp.Anonymous(this=name, expressions=[*c1, *c2])
+    band = None
+    for (ra, dec, r), (cra, cdec, cr) in ((c1, c2), (c2, c1)):
+        consts = [_const(x) for x in (cra, cdec, cr)]
+        reach = _const(r)
+        if isinstance(dec, exp.Column) and reach is not None and None not in consts:
+            band = (dec, (consts[1] - consts[2] - reach - 1e-9, consts[1] + consts[2] + reach + 1e-9))
+            break
+    return new, band
+
+
 def _fast_point_test(node) -> tuple[exp.Expression, tuple[float, float] | None] | None:
     found = _point_region(node)
     if not found:
@@ -751,6 +783,9 @@ def optimise_geometry(tree: exp.Expression) -> None:
             fast = _fast_point_test(target) if target is not None else None
             if fast and fast[1] is not None:
                 bands.append((_point_region(target)[0][1], fast[1]))
+            circles = _fast_circles(target) if target is not None else None
+            if circles and circles[1] is not None:
+                bands.append(circles[1])
             bound = _distance_bound(cond)
             if bound:
                 bands.append(bound)
@@ -763,7 +798,7 @@ def optimise_geometry(tree: exp.Expression) -> None:
     # every point-in-region test anywhere gets its direct form
     for node in list(tree.walk()):
         if isinstance(node, exp.Contains) or _is_call(node, "INTERSECTS"):
-            fast = _fast_point_test(node)
+            fast = _fast_point_test(node) or _fast_circles(node)
             if fast:
                 node.replace(fast[0])
     for node in list(tree.walk()):

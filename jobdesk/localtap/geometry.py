@@ -454,11 +454,32 @@ def sql_point_in(ra, dec, region):
     return int(contains_shapes(Point(float(ra) % 360.0, float(dec)), shape))
 
 
+def _check_circle_numbers(dec, cdec, radius) -> None:
+    if not (-90.0 <= dec <= 90.0 and -90.0 <= cdec <= 90.0):
+        raise GeometryError(f"latitude {dec if not -90.0 <= dec <= 90.0 else cdec} is outside "
+                            "[-90, 90] degrees")
+    if not 0.0 <= radius <= 180.0:
+        raise GeometryError(f"CIRCLE radius {radius} is outside [0, 180] degrees")
+
+
 def sql_in_cone(ra, dec, cra, cdec, radius):
     """CONTAINS(POINT(ra, dec), CIRCLE(cra, cdec, radius)) with plain numbers (the cone search)."""
     if ra is None or dec is None or cra is None or cdec is None or radius is None:
         return None
+    _check_circle_numbers(dec, cdec, radius)
     return int(separation(ra, dec, cra, cdec) <= radius)
+
+
+def sql_circles(relation: str):
+    """INTERSECTS or CONTAINS of two CIRCLEs given as numbers (no text built for every row)."""
+    def test(ra1, dec1, r1, ra2, dec2, r2):
+        if None in (ra1, dec1, r1, ra2, dec2, r2):
+            return None
+        _check_circle_numbers(dec1, dec2, r1)
+        _check_circle_numbers(dec1, dec2, r2)
+        d = separation(ra1, dec1, ra2, dec2)
+        return int(d <= r1 + r2) if relation == "intersects" else int(d + r1 <= r2)
+    return test
 
 
 def sql_distance(*args):
@@ -537,6 +558,8 @@ SQL_FUNCTIONS: dict[str, tuple[int, object]] = {
     "centroid": (1, sql_centroid),
     "adql_point_in": (3, sql_point_in),
     "adql_in_cone": (5, sql_in_cone),
+    "adql_circles_intersect": (6, sql_circles("intersects")),
+    "adql_circle_in_circle": (6, sql_circles("contains")),
 }
 
 
