@@ -90,7 +90,7 @@ class ChangeFeed:
         self.timeout = timeout
         self.interval = interval
         self._token: str | None = None
-        self._waiters: set[asyncio.Future] = set()
+        self._waiters: dict[asyncio.Future, str] = {}  # listener -> the token it already has
         self._watcher: asyncio.Task | None = None
 
     async def token(self) -> str:
@@ -102,7 +102,7 @@ class ChangeFeed:
         if since != current:
             return current
         waiter = asyncio.get_running_loop().create_future()
-        self._waiters.add(waiter)
+        self._waiters[waiter] = current
         if self._watcher is None or self._watcher.done():
             self._watcher = asyncio.ensure_future(self._watch())
         try:
@@ -110,7 +110,7 @@ class ChangeFeed:
         except asyncio.TimeoutError:
             return self._token or current
         finally:
-            self._waiters.discard(waiter)
+            self._waiters.pop(waiter, None)
 
     async def _watch(self) -> None:
         while self._waiters:
@@ -119,8 +119,8 @@ class ChangeFeed:
                 token = await self.token()
             except Exception:  # a broken index answers the waiters with the old token
                 token = self._token
-            for waiter in list(self._waiters):
-                if not waiter.done() and token is not None:
+            for waiter, since in list(self._waiters.items()):
+                if token is not None and token != since and not waiter.done():
                     waiter.set_result(token)
 
 
