@@ -7,7 +7,6 @@ import time
 from datetime import datetime, timedelta, timezone
 from pathlib import Path
 
-import pytest
 from lxml import etree
 
 UWS = "{http://www.ivoa.net/xml/UWS/v1.0}"
