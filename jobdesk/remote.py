@@ -16,9 +16,10 @@ import email.utils
 import hashlib
 import logging
 import os
+import random
 import re
 import time
-from collections.abc import Callable, Mapping
+from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass, field
 from datetime import UTC, datetime
 from pathlib import Path
@@ -27,9 +28,10 @@ from urllib.parse import urljoin, urlsplit, urlunsplit
 from xml.etree.ElementTree import Element, ParseError
 
 import requests
+import urllib3
 from defusedxml import DefusedXmlException
 from defusedxml import ElementTree as SafeET
-from tenacity import Retrying, retry_if_exception_type, stop_after_attempt, wait_exponential_jitter
+from tenacity import Retrying, retry_if_exception_type, stop_after_attempt
 
 from jobdesk import phases
 from jobdesk.errors import (
@@ -325,7 +327,7 @@ class Remote:
 
     def download(self, url: str, dest: Path, *,
                  on_progress: Callable[[int], None] | None = None) -> Downloaded:
-        """Stream ``url`` into ``dest`` in 1 MiB chunks, hashing as it goes; fsync at the end.
+        """Stream ``url`` into ``dest`` (pieces of at most 1 MiB), hashing as it goes; fsync at the end.
 
         A dropped connection resumes with an HTTP Range request where the service advertised
         ``Accept-Ranges: bytes`` (RFC 9110 §14), else the file restarts from zero, both a bounded
@@ -373,9 +375,7 @@ class Remote:
                 elif state["written"]:
                     restart()  # a 200 to a Range request: the whole body comes again
                 state["type"] = response.headers.get("Content-Type")
-                for chunk in response.iter_content(CHUNK):
-                    if not chunk:
-                        continue
+                for chunk in _body_pieces(response):
                     handle.write(chunk)
                     state["hash"].update(chunk)
                     state["written"] += len(chunk)
@@ -422,22 +422,24 @@ class Remote:
         return response
 
     def _retrying(self) -> Retrying:
-        jitter = wait_exponential_jitter(initial=min(FIRST_POLL, self.max_backoff),
-                                         max=self.max_backoff, jitter=min(FIRST_POLL, self.max_backoff))
-
-        def wait(state: Any) -> float:
-            exc = state.outcome.exception() if state.outcome else None
-            if isinstance(exc, _RetryableStatus) and exc.retry_after is not None:
-                return min(exc.retry_after, self.max_backoff)  # RFC 9110 §10.2.3, capped
-            return jitter(state)
-
         def before_sleep(state: Any) -> None:
             exc = state.outcome.exception() if state.outcome else None
             log.debug("retrying after %s (attempt %d of %d)", exc.__class__.__name__,
                       state.attempt_number, self.attempts)
 
-        return Retrying(stop=stop_after_attempt(self.attempts), wait=wait, reraise=True,
-                        retry=retry_if_exception_type(_TRANSIENT), before_sleep=before_sleep)
+        return Retrying(
+            stop=stop_after_attempt(self.attempts), reraise=True,
+            retry=retry_if_exception_type(_TRANSIENT), before_sleep=before_sleep,
+            wait=lambda state: self._retry_pause(
+                state.outcome.exception() if state.outcome else None, state.attempt_number))
+
+    def _retry_pause(self, exc: BaseException | None, attempt_number: int) -> float:
+        """Seconds before the next try: the service's ``Retry-After`` if it gave one, else
+        exponential backoff from 0.2 s with jitter (common practice, no source); both capped."""
+        if isinstance(exc, _RetryableStatus) and exc.retry_after is not None:
+            return min(exc.retry_after, self.max_backoff)  # RFC 9110 §10.2.3, capped
+        backoff = FIRST_POLL * 2 ** min(max(attempt_number - 1, 0), 30)
+        return min(backoff + random.uniform(0, FIRST_POLL), self.max_backoff)
 
     def _retry_call(self, retrying: Retrying, fn: Callable[[], Any], *, method: str, url: str) -> Any:
         """Run ``fn`` under ``retrying``; turn what is left after the last try into our errors."""
@@ -541,7 +543,7 @@ def _job_status(url: str, body: bytes, service: str) -> JobStatus:
     for param in _children(params_el, "parameter") if params_el is not None else ():
         name = param.get("id")
         if name:
-            parameters[name.upper()] = (param.text or "").strip()
+            parameters[name.upper()] = param.text or ""  # exact: values are case- and space-sensitive
     result_url = None
     results_el = _child(root, "results")
     if results_el is not None:
@@ -639,6 +641,27 @@ def _response_message(response: requests.Response) -> str:
     message = _document_message(body, response.headers.get("Content-Type"))
     message = " ".join(re.sub(r"<[^>]{0,200}>", " ", message).split())  # strip stray HTML tags
     return _shorten(message or response.reason or "(empty answer)")
+
+
+def _body_pieces(response: requests.Response) -> Iterator[bytes]:
+    """The body as it arrives, at most 1 MiB a piece, keeping every byte before a break.
+
+    ``iter_content`` asks for whole chunks and loses the part of a chunk that arrived before
+    the connection broke; ``read1`` hands over what is there, so a resume starts exactly where
+    the data ended.  urllib3's errors become the requests errors they stand for.
+    """
+    raw = response.raw
+    read = getattr(raw, "read1", None) or raw.read  # read1: urllib3 2; read: may lose a piece
+    while True:
+        try:
+            piece = read(CHUNK, decode_content=True)
+        except urllib3.exceptions.ReadTimeoutError as exc:
+            raise requests.exceptions.ConnectionError(exc) from None
+        except (urllib3.exceptions.ProtocolError, urllib3.exceptions.DecodeError) as exc:
+            raise requests.exceptions.ChunkedEncodingError(exc) from None
+        if not piece:
+            return
+        yield piece
 
 
 def _looks_like_xml(content_type: str | None, path: Path) -> bool:

@@ -11,9 +11,11 @@ from __future__ import annotations
 import hashlib
 import io
 import socket
+import threading
 import traceback
 from datetime import UTC, datetime, timedelta
 from email.utils import format_datetime
+from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from urllib.parse import parse_qs, urlsplit
 
 import pytest
@@ -35,7 +37,7 @@ from jobdesk.errors import (
 from jobdesk.localtap import serve
 from jobdesk.remote import Remote
 
-TABLE = "survey.objects"   # the invented catalogue localtap generates
+TABLE = "orrery.sources"   # the invented catalogue localtap generates
 QUERY = f"SELECT TOP 50 * FROM {TABLE}"
 SECRET = "tok-3f9a1c77e2b54d0d"  # an invented bearer token
 
@@ -356,6 +358,7 @@ def big_result(tap, tmp_path):
 def test_a_dropped_download_resumes_or_restarts_to_the_same_bytes(tap, tmp_path, big_result, cut):
     url, clean = big_result
     tap.configure(drop_result_after=cut, drop_result_times=2)
+    sent_before = tap.stats()["result_bytes_sent"]
     remote = make_remote(tap, attempts=5)
     progress: list[int] = []
     got = remote.download(url, tmp_path / "again.vot", on_progress=progress.append)
@@ -364,6 +367,23 @@ def test_a_dropped_download_resumes_or_restarts_to_the_same_bytes(tap, tmp_path,
     assert hashlib.sha256(got.path.read_bytes()).hexdigest() == clean.sha256
     assert remote.requests == 3                 # two cut answers, then the rest
     assert progress and progress[-1] == clean.bytes
+    # The job result advertises Accept-Ranges, so every byte travelled once (RFC 9110 §14.2).
+    assert tap.stats()["result_bytes_sent"] - sent_before == clean.bytes
+
+
+def test_a_dropped_download_without_ranges_restarts_from_zero(tap, tmp_path):
+    # localtap serves /sync answers without Accept-Ranges; each answer is generated anew.
+    url = (f"{tap.url}/sync?LANG=ADQL&QUERY=SELECT+*+FROM+{TABLE}+ORDER+BY+source_id")
+    cut = 7000
+    tap.configure(drop_result_after=cut, drop_result_times=2)
+    sent_before = tap.stats()["result_bytes_sent"]
+    remote = make_remote(tap, attempts=4)
+    got = remote.download(url, tmp_path / "sync.vot")
+    body = got.path.read_bytes()
+    assert got.sha256 == hashlib.sha256(body).hexdigest()
+    assert len(Table.read(io.BytesIO(body), format="votable")) == 500
+    assert remote.requests == 3
+    assert tap.stats()["result_bytes_sent"] - sent_before == got.bytes + 2 * cut
 
 
 def test_a_download_that_always_breaks_gives_up_and_leaves_no_file(tap, tmp_path, big_result):
@@ -371,14 +391,12 @@ def test_a_download_that_always_breaks_gives_up_and_leaves_no_file(tap, tmp_path
     tap.configure(drop_result_after=5000, drop_result_times=None)
     remote = make_remote(tap, attempts=3)
     dest = tmp_path / "never.vot"
-    try:
-        got = remote.download(url, dest)
-    except ServiceUnreachable as exc:
-        assert tap.url in str(exc)
-        assert not dest.exists()
-    else:
-        # Only possible when each resumed piece adds 5000 bytes and three pieces were enough.
-        assert got.sha256 == clean.sha256
+    assert clean.bytes > 3 * 5000              # three pieces of 5000 bytes cannot make the file
+    with pytest.raises(ServiceUnreachable) as caught:
+        remote.download(url, dest)
+    assert tap.url in str(caught.value)
+    assert remote.requests == 3
+    assert not dest.exists()
 
 
 def test_a_lost_result_is_reported_as_lost(tap, tmp_path, big_result):
@@ -446,12 +464,54 @@ def test_session_secrets_never_appear_in_errors(tap, tmp_path):
         assert SECRET not in text
 
 
-def test_messages_are_scrubbed_of_what_the_service_echoes():
-    # A pure-function check: a service that echoes the request headers back must not leak them.
+@pytest.fixture
+def echoing_service():
+    """A real HTTP server that echoes the request headers in its error answers, the way some
+    misconfigured proxies and debug pages do; localtap never echoes headers, so this one is
+    needed to show the scrubbing at work."""
+
+    class Echo(BaseHTTPRequestHandler):
+        def do_GET(self):
+            status = 503 if self.path.endswith("/busy") else 400
+            body = "bad request; you sent:\n" + str(self.headers)
+            self.send_response(status)
+            self.send_header("Content-Type", "text/plain")
+            self.send_header("Retry-After", "0")
+            self.end_headers()
+            self.wfile.write(body.encode())
+
+        def log_message(self, *args):
+            pass
+
+    server = ThreadingHTTPServer(("127.0.0.1", 0), Echo)
+    thread = threading.Thread(target=server.serve_forever, daemon=True)
+    thread.start()
+    yield f"http://127.0.0.1:{server.server_address[1]}/tap"
+    server.shutdown()
+    server.server_close()
+
+
+def test_echoed_credentials_are_scrubbed_from_messages(echoing_service):
     session = requests.Session()
-    session.headers["X-Api-Key"] = SECRET
-    remote = Remote("http://127.0.0.1:9/tap", session)
-    assert SECRET not in remote._scrub(f"header was X-Api-Key: {SECRET}.")
+    session.headers["Authorization"] = f"Bearer {SECRET}"
+    session.headers["X-Api-Key"] = SECRET + "-key"
+    remote = Remote(echoing_service, session, attempts=2, max_backoff=0.01, timeout=5.0)
+    for path, kind in (("/async/j1", ServiceRefused), ("/async/busy", ServiceRefused)):
+        with pytest.raises(kind) as caught:
+            remote.status(echoing_service + path)
+        text = "".join(traceback.format_exception(caught.value))
+        assert "you sent" in text               # the service's own words are kept ...
+        assert SECRET not in text               # ... but not what the session carries
+    assert remote.requests == 1 + 2             # 400: no retry; 503: both attempts
+
+
+def test_retry_after_is_honoured_but_capped():
+    remote = Remote("http://127.0.0.1:9/tap", max_backoff=4.0)
+    # RFC 9110 §10.2.3: the service says how long to wait; a cap keeps a kernel responsive.
+    assert remote._retry_pause(remote_mod._RetryableStatus(503, "", 2.0), 1) == 2.0
+    assert remote._retry_pause(remote_mod._RetryableStatus(429, "", 600.0), 1) == 4.0
+    pauses = [remote._retry_pause(None, n) for n in range(1, 8)]
+    assert all(0.2 <= p <= 4.0 for p in pauses) and pauses[-1] == 4.0
 
 
 # --- parsing and small rules (no server needed) ------------------------------------------------
