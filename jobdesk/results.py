@@ -34,6 +34,8 @@ __all__ = ["ResultSummary", "to_parquet", "scan", "load_table", "load_frame", "e
 READ_CHUNK = 1 << 20          # bytes fed to the XML parser at a time
 BATCH_CELLS = 500_000         # cells per Arrow batch: bounds memory whatever the column count
 BATCH_ROWS = 50_000
+ROW_GROUP_ROWS = 1_000_000    # larger row groups read back faster ...
+ROW_GROUP_BYTES = 48 << 20    # ... but are held in memory until written
 SUMMARY_KEY = "jobdesk.summary"
 METADATA_KEY = "jobdesk.metadata"
 _FIELD_KEYS = ("name", "datatype", "arraysize", "unit", "ucd", "description", "xtype", "utype")
@@ -267,8 +269,7 @@ class _BinaryRows:
             arr = pa.array([_latin(b) for b in arr.to_pylist()], pa.string()) \
                 if not _is_utf8(arr) else arr.cast(pa.string())
         elif f.datatype == "unicodeChar":
-            arr = pa.array([b.decode("utf-16-be", "replace").rstrip("\0") for b in raw.tolist()],
-                           pa.string())
+            arr = _ucs2_column(raw, f.count)
         elif f.datatype == "boolean":
             flat = raw.reshape(len(raw), -1)
             vals = np.isin(flat, (b"T", b"t", b"1"))
@@ -379,6 +380,16 @@ class _BinaryRows:
         if null.any():
             arr = pc.if_else(pa.array(null), pa.scalar(None, arr.type), arr)
         return arr
+
+
+def _ucs2_column(raw: np.ndarray, n: int) -> pa.Array:
+    """Fixed-width unicodeChar (UCS-2, VOTable 1.4 §2.1) to strings without a Python loop."""
+    codes = np.frombuffer(raw.tobytes(), dtype=">u2").astype("<u4")
+    try:
+        return pa.array(codes.view(f"<U{n}"), pa.string())   # numpy drops the NUL padding
+    except (pa.ArrowInvalid, UnicodeError, ValueError):       # lone surrogates
+        return pa.array([b.decode("utf-16-be", "replace").rstrip("\0") for b in raw.tolist()],
+                        pa.string())
 
 
 def _np_type(f: _Field) -> np.dtype:
@@ -679,6 +690,8 @@ class _ParquetSink:
         self.metadata = metadata
         self.writer: pq.ParquetWriter | None = None
         self.schema: pa.Schema | None = None
+        self.pending: list[pa.RecordBatch] = []
+        self.pending_rows = self.pending_bytes = 0
 
     def begin(self, fields: list[_Field]) -> None:
         names = [f.name for f in fields]
@@ -691,17 +704,29 @@ class _ParquetSink:
             af = f.arrow_field()
             arrow_fields.append(af if k == 0 else af.with_name(f"{name}_{k}"))
         self.schema = pa.schema(arrow_fields, metadata=self.metadata)
-        self.writer = pq.ParquetWriter(self.path, self.schema, compression="zstd")
+        # snappy: reads back about twice as fast as zstd here, for a file ~10% larger
+        self.writer = pq.ParquetWriter(self.path, self.schema, compression="snappy")
 
     def write(self, cols: list[pa.Array], rows: int) -> None:
         batch = pa.RecordBatch.from_arrays(
             [c if c.type == f.type else c.cast(f.type) for c, f in zip(cols, self.schema)],
             schema=self.schema)
-        self.writer.write_batch(batch, row_group_size=rows)
+        self.pending.append(batch)
+        self.pending_rows += rows
+        self.pending_bytes += batch.nbytes
+        if self.pending_rows >= ROW_GROUP_ROWS or self.pending_bytes >= ROW_GROUP_BYTES:
+            self._write_pending()
+
+    def _write_pending(self) -> None:
+        if self.pending:
+            self.writer.write_table(pa.Table.from_batches(self.pending, schema=self.schema),
+                                    row_group_size=self.pending_rows)
+        self.pending, self.pending_rows, self.pending_bytes = [], 0, 0
 
     def finish(self, fields: list[_Field], extra: dict[str, str]) -> None:
         if self.writer is None:
             self.begin(fields)
+        self._write_pending()
         # The summary is known only at the end (OVERFLOW follows the rows), so it goes into the
         # file's key-value metadata at close, together with the Arrow schema carrying it too,
         # so that pyarrow readers see it as schema metadata.

@@ -106,6 +106,7 @@ def test_many_batches_and_tiny_reads_give_the_same_values(tmp_path, fmt, monkeyp
     monkeypatch.setattr(results, "BATCH_CELLS", 700)
     monkeypatch.setattr(results, "BATCH_ROWS", 50)
     monkeypatch.setattr(results, "READ_CHUNK", 1024)
+    monkeypatch.setattr(results, "ROW_GROUP_ROWS", 120)
     src = write_votable(invented_table(1500, seed=SEED + 1), tmp_path / "b.xml", fmt)
     out = tmp_path / "b.parquet"
     assert results.to_parquet(src, out).rows == 1500
