@@ -204,6 +204,10 @@ def check_supported(tree: exp.Expression) -> None:
             raise _refuse(node, "TOP ... PERCENT / WITH TIES are not ADQL")
         if isinstance(node, exp.Join) and node.args.get("kind") in ("CROSS APPLY", "OUTER APPLY"):
             raise _refuse(node, "APPLY joins are not ADQL")
+        if isinstance(node, exp.Join) and "NATURAL" in (node.args.get("method") or "").upper():
+            raise _refuse(node, "NATURAL JOIN is not supported here; write the condition with ON")
+        if isinstance(node, exp.TableAlias) and node.args.get("columns"):
+            raise _refuse(node, "column lists after a table alias, AS t(a, b), are not supported")
         if isinstance(node, exp.Table) and not isinstance(node.this, exp.Identifier):
             raise _refuse(node, "only named tables and subqueries may appear in FROM")
         if isinstance(node, exp.Select):

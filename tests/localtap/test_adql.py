@@ -223,6 +223,10 @@ def test_syntax_errors_say_where(engine, adql, line, column):
     ("SELECT ra FROM orrery.sources AS s JOIN orrery.epochs AS e USING (source_id)", "USING"),
     ("SELECT REGION('Circle ICRS 1 2 3') FROM orrery.sources", "REGION"),
     ("SELECT 1", "FROM"),
+    ("SELECT TOP 1 * FROM orrery.sources NATURAL JOIN orrery.epochs", "NATURAL"),
+    ("SELECT t.a FROM (SELECT ra FROM orrery.sources) AS t(a)", "column lists"),
+    ("SELECT @x FROM orrery.sources", "not supported"),
+    ("WITH RECURSIVE x AS (SELECT ra FROM orrery.sources) SELECT ra FROM x", "RECURSIVE"),
 ])
 def test_unsupported_or_wrong_queries_get_clear_messages(engine, adql, message):
     with pytest.raises(AdqlError, match=message):
