@@ -355,7 +355,8 @@ class _Translator:
                 col.set("this", exp.to_identifier(
                     next(n for n in names if ident_matches(col.this, n)), quoted=True))
             return
-        self.resolve_part(order, scopes, ctes, aliases)
+        # an unqualified ORDER BY name means the output column first (SQL), then a source column
+        self.resolve_part(order, scopes, ctes, aliases, prefer_aliases=True)
 
     def _star_sources(self, item, sources):
         if isinstance(item, exp.Star):
@@ -407,22 +408,28 @@ class _Translator:
 
     # -- columns --
 
-    def resolve_part(self, part, scopes, ctes, aliases):
+    def resolve_part(self, part, scopes, ctes, aliases, prefer_aliases=False):
         if part is None:
             return
         for node in _own_nodes(part):
             if isinstance(node, exp.Query) or isinstance(node, exp.Subquery):
                 self.query(node, scopes, ctes)
             elif isinstance(node, exp.Column):
-                self.column(node, scopes, aliases)
+                self.column(node, scopes, aliases, prefer_aliases and node.parent is not None
+                            and isinstance(node.parent, exp.Ordered))
 
-    def column(self, col: exp.Column, scopes, aliases):
+    def column(self, col: exp.Column, scopes, aliases, prefer_aliases=False):
         if "adql" in col.meta:
             return  # produced by star expansion, already resolved
         ident = col.this
         if isinstance(ident, exp.Star):
             raise _refuse(col, f"{col.sql()} is only allowed in the select list")
         table = col.args.get("table")
+        if prefer_aliases and table is None and aliases:
+            for a in aliases:
+                if ident_matches(ident, a):
+                    col.set("this", exp.to_identifier(a, quoted=True))
+                    return
         schema = col.args.get("db")
         if col.args.get("catalog") is not None:
             raise _refuse(col, f"too many qualifiers in {col.sql()}")

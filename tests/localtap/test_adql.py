@@ -105,6 +105,15 @@ def test_top_and_offset(engine, data):
     assert [r[0] for r in rows] == ids[::-1][2990:].tolist()
 
 
+def test_order_by_prefers_output_names(engine, data):
+    # SQL rule (ADQL 2.1 §2.2 defers to SQL-92): ORDER BY name = the output column of that name
+    _, rows = run(engine, "SELECT TOP 3 ra AS dec FROM orrery.sources ORDER BY dec")
+    assert [r[0] for r in rows] == np.sort(data[0]["ra"])[:3].tolist()
+    _, rows = run(engine, "SELECT TOP 3 ra AS dec FROM orrery.sources ORDER BY dec + 0")
+    by_dec = np.argsort(data[0]["dec"])[:3]  # inside an expression: the source column (SQL-92)
+    assert [r[0] for r in rows] == data[0]["ra"][by_dec].tolist()
+
+
 def test_where_predicates_match_numpy(engine, data):
     src = data[0]
     expected = int(np.sum((src["mag_lime"] >= 14) & (src["mag_lime"] <= 15)
