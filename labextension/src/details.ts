@@ -19,7 +19,8 @@ export class JobDetails extends Widget {
   constructor(
     private readonly model: JobDeskModel,
     private readonly actions: IPanelActions,
-    readonly jobId: string
+    readonly jobId: string,
+    private readonly known: IJobRecord | null = null
   ) {
     super();
     this.addClass('jd-details');
@@ -36,7 +37,17 @@ export class JobDetails extends Widget {
     try {
       details = await this.model.details(this.jobId);
     } catch (err) {
-      this.node.replaceChildren(para('jd-error', (err as Error).message));
+      // Show what the list already knows, with the reason the rest is missing.
+      const problem = para('jd-error', `Details unavailable: ${(err as Error).message}`);
+      this.node.replaceChildren(problem);
+      if (this.known) {
+        this.node.replaceChildren(
+          this.header(this.known),
+          problem,
+          section('Query', pre(this.known.adql)),
+          section('Facts', this.facts(this.known))
+        );
+      }
       return;
     }
     const job = details.job;

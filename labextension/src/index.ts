@@ -41,7 +41,7 @@ const plugin: JupyterFrontEndPlugin<void> = {
       openDetails(job) {
         let widget = openDetails.get(job.id);
         if (!widget || widget.isDisposed) {
-          const content = new JobDetails(model, actions, job.id);
+          const content = new JobDetails(model, actions, job.id, job);
           widget = new MainAreaWidget({ content });
           widget.id = content.id;
           widget.title.icon = jobdeskIcon;
