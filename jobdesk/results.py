@@ -35,7 +35,7 @@ READ_CHUNK = 1 << 20          # bytes fed to the XML parser at a time
 BATCH_CELLS = 500_000         # cells per Arrow batch: bounds memory whatever the column count
 BATCH_ROWS = 50_000
 ROW_GROUP_ROWS = 1_000_000    # larger row groups read back faster ...
-ROW_GROUP_BYTES = 48 << 20    # ... but are held in memory until written
+ROW_GROUP_BYTES = 24 << 20    # ... but are held in memory until written
 SUMMARY_KEY = "jobdesk.summary"
 METADATA_KEY = "jobdesk.metadata"
 _FIELD_KEYS = ("name", "datatype", "arraysize", "unit", "ucd", "description", "xtype", "utype")
@@ -307,79 +307,133 @@ class _BinaryRows:
         return None
 
     def _decode_variable(self, buf: bytearray) -> tuple[list[pa.Array], int, int] | None:
-        """Row by row, for tables with variable-length fields (a 4-byte count precedes them)."""
-        view = memoryview(buf)
-        pos, rows, limit = 0, 0, max(1, BATCH_CELLS // max(1, len(self.fields)))
-        cells: list[list] = [[] for _ in self.fields]
-        nulls: list[list[bool]] = [[] for _ in self.fields]
+        """Tables with variable-length fields: a 4-byte count precedes each such value (§5.4).
+
+        Only the walk from one row to the next is sequential; it touches the counts alone and
+        records where each value starts. The values are then gathered with numpy.
+        """
         size = len(buf)
+        limit = max(1, BATCH_CELLS // max(1, len(self.fields)))
+        count_at = _COUNT.unpack_from
+        # the row as runs: a constant number of bytes, or one variable field (bytes per count)
+        layout: list[tuple[int, int]] = []        # (fixed bytes before, bytes per count)
+        run = self.mask_bytes
+        for f in self.fields:
+            if f.variable:
+                layout.append((run, _width(f, f.step)))
+                run = 0
+            else:
+                run += _width(f, f.count)
+        tail = run
+        row_starts: list[int] = []
+        var_starts: list[list[int]] = [[] for _ in layout]
+        var_sizes: list[list[int]] = [[] for _ in layout]
+        pos = rows = 0
         while rows < limit:
-            start = pos
-            if size - pos < self.mask_bytes:
-                break
-            mask = view[pos: pos + self.mask_bytes]
-            pos += self.mask_bytes
-            row: list = []
-            complete = True
-            for f in self.fields:
-                n = f.count
-                if f.variable:
-                    if size - pos < 4:
-                        complete = False
-                        break
-                    # §5.4: a 4-byte count of the varying last dimension precedes the values
-                    n = struct.unpack_from(">I", view, pos)[0] * f.step
-                    pos += 4
-                width = _width(f, n)
-                if size - pos < width:
-                    complete = False
+            p = pos
+            sizes = []
+            for before, unit in layout:
+                p += before
+                if p + 4 > size:
                     break
-                row.append((f, bytes(view[pos: pos + width]), n))
-                pos += width
-            if not complete:
-                pos = start
-                break
-            for i, (f, raw, n) in enumerate(row):
-                is_null = bool(self.binary2 and (mask[i // 8] >> (7 - i % 8)) & 1)
-                cells[i].append(raw)
-                nulls[i].append(is_null)
-            rows += 1
-        view.release()
+                nbytes = count_at(buf, p)[0] * unit
+                sizes.append((p + 4, nbytes))
+                p += 4 + nbytes
+            else:
+                p += tail
+                if p <= size:
+                    row_starts.append(pos)
+                    for k, (start, nbytes) in enumerate(sizes):
+                        var_starts[k].append(start)
+                        var_sizes[k].append(nbytes)
+                    pos = p
+                    rows += 1
+                    continue
+            break
         if rows == 0:
             return None
-        cols = [self._variable_column(f, cells[f.index], nulls[f.index]) for f in self.fields]
+        data = np.frombuffer(buf, dtype=np.uint8, count=pos)
+        starts = np.array(row_starts, dtype=np.int64)
+        nulls = None
+        if self.binary2:
+            nulls = self._null_bits(_gather_fixed(data, starts, self.mask_bytes))
+        cols = []
+        anchor = starts + self.mask_bytes         # where the current run of fixed fields starts
+        k = 0
+        for f in self.fields:
+            null = None if nulls is None else nulls[:, f.index]
+            if f.variable:
+                vs = np.array(var_starts[k], dtype=np.int64)
+                vn = np.array(var_sizes[k], dtype=np.int64)
+                cols.append(self._variable_column(f, data, vs, vn, null))
+                anchor = vs + vn
+                k += 1
+            else:
+                width = _width(f, f.count)
+                dtype = np.dtype([("v",) + self._fixed_dtype(f)])
+                raw = _gather_fixed(data, anchor, width).view(dtype).reshape(rows)["v"]
+                cols.append(self._fixed_column(f, raw, null))
+                anchor = anchor + width
+        del data
         return cols, rows, pos
 
-    def _variable_column(self, f: _Field, raws: list[bytes], nulls: list[bool]) -> pa.Array:
-        null = np.array(nulls, dtype=bool)
+    def _variable_column(self, f: _Field, data: np.ndarray, starts: np.ndarray,
+                         nbytes: np.ndarray, null: np.ndarray | None) -> pa.Array:
+        offsets = np.zeros(len(starts) + 1, dtype=np.int64)
+        np.cumsum(nbytes, out=offsets[1:])
+        payload = _gather_ranges(data, starts, nbytes, offsets)
         if f.datatype == "char":
-            arr = pa.array([_latin(r.rstrip(b"\0")) for r in raws], pa.string())
+            arr = pa.Array.from_buffers(pa.large_binary(), len(starts),
+                                        [None, pa.py_buffer(offsets), pa.py_buffer(payload)])
+            if _is_utf8(arr):
+                arr = arr.cast(pa.large_string()).cast(pa.string())
+            else:
+                arr = pa.array([_latin(b) for b in arr.to_pylist()], pa.string())
+            arr = pc.utf8_rtrim(arr, characters="\0")
         elif f.datatype == "unicodeChar":
-            arr = pa.array([r.decode("utf-16-be", "replace").rstrip("\0") for r in raws],
-                           pa.string())
+            arr = pa.array([payload[a:b].tobytes().decode("utf-16-be", "replace").rstrip("\0")
+                            for a, b in zip(offsets[:-1], offsets[1:])], pa.string())
         else:
             if f.datatype == "bit":
-                parts = [np.unpackbits(np.frombuffer(r, "u1"))[: len(r) * 8].astype(bool)
-                         for r in raws]
-                # the exact bit count is lost in byte padding only for bit arrays; rare.
+                # packed bits: the exact count is in the element count, padding bits dropped
+                parts = [np.unpackbits(payload[a:b]).astype(bool) for a, b in
+                         zip(offsets[:-1], offsets[1:])]
+                lengths = np.array([len(x) for x in parts], dtype=np.int64)
+                flat = np.concatenate(parts) if parts else np.zeros(0, dtype=bool)
             elif f.datatype == "boolean":
-                parts = [np.isin(np.frombuffer(r, "S1"), (b"T", b"t", b"1")) for r in raws]
+                flat = np.isin(payload.view("S1"), (b"T", b"t", b"1"))
+                lengths = nbytes
             else:
                 dt = np.dtype(">" + _NUMERIC[f.datatype][0])
-                parts = [np.frombuffer(r, dt).astype(dt.newbyteorder("=")) for r in raws]
-            if f.is_array or f.complex:
-                lengths = np.fromiter((len(p) for p in parts), dtype=np.int32, count=len(parts))
-                offsets = np.zeros(len(parts) + 1, dtype=np.int32)
-                np.cumsum(lengths, out=offsets[1:])
-                flat = np.concatenate(parts) if parts else np.zeros(0, dtype=_np_type(f))
-                values = pa.array(flat, mask=self._element_nulls(f, flat))
-                arr = pa.ListArray.from_arrays(pa.array(offsets), values)
-            else:
-                flat = np.concatenate(parts)
-                arr = pa.array(flat, mask=self._element_nulls(f, flat))
-        if null.any():
+                flat = payload.view(dt).astype(dt.newbyteorder("="))
+                lengths = nbytes // dt.itemsize
+            item_offsets = np.zeros(len(starts) + 1, dtype=np.int32)
+            np.cumsum(lengths, out=item_offsets[1:])
+            values = pa.array(flat, mask=self._element_nulls(f, flat))
+            arr = pa.ListArray.from_arrays(pa.array(item_offsets), values)
+        if null is not None and null.any():
             arr = pc.if_else(pa.array(null), pa.scalar(None, arr.type), arr)
         return arr
+
+
+_COUNT = struct.Struct(">I")
+
+
+def _gather_fixed(data: np.ndarray, starts: np.ndarray, width: int) -> np.ndarray:
+    """The ``width`` bytes at each start, as a C-contiguous (rows, width) array."""
+    if width == 0:
+        return np.zeros((len(starts), 0), dtype=np.uint8)
+    return data[starts[:, None] + np.arange(width)]
+
+
+def _gather_ranges(data: np.ndarray, starts: np.ndarray, nbytes: np.ndarray,
+                   offsets: np.ndarray) -> np.ndarray:
+    """The byte ranges (start, nbytes) concatenated, without a Python loop."""
+    total = int(offsets[-1])
+    if total == 0:
+        return np.zeros(0, dtype=np.uint8)
+    index = np.arange(total, dtype=np.int64) + np.repeat(starts - offsets[:-1], nbytes)
+    return data[index]
 
 
 def _ucs2_column(raw: np.ndarray, n: int) -> pa.Array:
@@ -390,12 +444,6 @@ def _ucs2_column(raw: np.ndarray, n: int) -> pa.Array:
     except (pa.ArrowInvalid, UnicodeError, ValueError):       # lone surrogates
         return pa.array([b.decode("utf-16-be", "replace").rstrip("\0") for b in raw.tolist()],
                         pa.string())
-
-
-def _np_type(f: _Field) -> np.dtype:
-    if f.datatype in ("bit", "boolean"):
-        return np.dtype(bool)
-    return np.dtype(_NUMERIC[f.datatype][0])
 
 
 def _width(f: _Field, n: int) -> int:
@@ -432,6 +480,10 @@ def _is_utf8(arr: pa.Array) -> bool:
 # --- the streaming reader ----------------------------------------------------------------------
 
 
+def _short(text: str, limit: int = 200) -> str:
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
 def _local(tag: str) -> str:
     return tag.rpartition("}")[2]
 
@@ -444,7 +496,7 @@ class _Reader:
         self.stack: list[str] = []
         self.resources: list[str] = []        # the type of each open RESOURCE
         self.infos: dict[str, str] = {}
-        self.statuses: list[tuple[bool, str, str | None]] = []
+        self.statuses: list[tuple[str, str, str | None]] = []   # (where, value, message)
         self.fields: list[_Field] = []
         self.table_depth: int | None = None   # stack depth of the TABLE whose rows we keep
         self.tables_seen = 0
@@ -588,7 +640,14 @@ class _Reader:
             return
         rows = len(self.cells) // n
         if self.sink.wants_values:
-            cols = [_column_from_text(self.cells[i::n], f) for i, f in enumerate(self.fields)]
+            cols = []
+            for i, f in enumerate(self.fields):
+                try:
+                    cols.append(_column_from_text(self.cells[i::n], f))
+                except (pa.ArrowInvalid, OverflowError) as exc:
+                    raise ServiceResponseInvalid(
+                        f"column {f.name!r} ({f.datatype}) holds a value that does not fit: "
+                        f"{_short(str(exc))}") from None
             self.sink.write(cols, rows)
         self.cells = []
 
@@ -663,7 +722,9 @@ def _read(source: IO[bytes], sink) -> tuple[ResultSummary, list[_Field]]:
 
 
 def _refuse_non_xml(head: bytes) -> None:
-    start = head.lstrip()[:200]
+    if head[:2] in (b"\xff\xfe", b"\xfe\xff"):
+        return                                  # UTF-16 with a byte order mark: expat decides
+    start = head.removeprefix(b"\xef\xbb\xbf").lstrip()[:200]
     if start[:1] != b"<":
         preview = start[:60].decode("utf-8", "replace")
         raise ServiceResponseInvalid(f"expected a VOTable document, found text: {preview!r}")

@@ -132,8 +132,15 @@ def test_variable_length_arrays_and_strings(tmp_path, fmt):
                             for _ in range(n)], dtype=object)
     t["word"] = np.array(["".join(rng.choice(list("pqrΩ"), rng.integers(0, 12))) for _ in range(n)],
                          dtype=object)
+    t["code"] = np.array(["".join(rng.choice(list("ABC-"), rng.integers(0, 7))) for _ in range(n)],
+                         dtype=object)
+    # fixed fields after variable ones, with nulls (BINARY2 null bits, VALUES null in BINARY)
+    t["after"] = MaskedColumn(rng.integers(0, 50, n).astype("i4"), mask=rng.random(n) < 0.2)
+    t["last"] = MaskedColumn(rng.normal(size=n), mask=rng.random(n) < 0.2)
+    vt = from_table(t)
+    vt.get_first_table().get_field_by_id("after").values.null = -7
     src = tmp_path / "v.xml"
-    from_table(t).to_xml(str(src), tabledata_format=fmt)
+    vt.to_xml(str(src), tabledata_format=fmt)
     out = tmp_path / "v.parquet"
     results.to_parquet(src, out)
     ref, got = reference(src), results.load_table(out)
@@ -141,7 +148,50 @@ def test_variable_length_arrays_and_strings(tmp_path, fmt):
         assert len(ref[name]) == len(got[name]) == n
         for a, b in zip(ref[name], got[name]):
             np.testing.assert_array_equal(np.asarray(a), np.asarray(b))
-    assert [str(x) for x in ref["word"]] == [str(x) for x in got["word"]]
+    for name in ("word", "code"):
+        assert [str(x) for x in ref[name]] == [str(x) for x in got[name]], name
+    for name in ("after", "last"):
+        assert_same_column(ref[name], got[name], name)
+    assert got["after"].mask.any() and got["last"].mask.any()
+    fields = {f["name"]: f for f in results.scan(src).fields}
+    assert fields["code"]["arraysize"] == "*"
+
+
+@pytest.mark.parametrize("binary2", [False, True])
+def test_hand_built_binary_stream_with_variable_char(tmp_path, binary2):
+    # VOTable 1.4 §5.4 (BINARY): big-endian values, a 4-byte count before variable-length ones;
+    # §5.5 (BINARY2): a null bitmask (one bit per FIELD, MSB first) heads every row.
+    import base64
+    import struct
+
+    rng = np.random.default_rng(SEED + 3)
+    rows = []
+    for k in range(257):
+        name = "".join(rng.choice(list("abcdef_"), rng.integers(0, 10))).encode()
+        num = None if binary2 and k % 5 == 0 else int(rng.integers(-99, 99))
+        mag = float("nan") if k % 7 == 0 else float(rng.normal())
+        rows.append((name, num, mag))
+    payload = bytearray()
+    for name, num, mag in rows:
+        if binary2:
+            payload.append(0b01000000 if num is None else 0)
+        payload += struct.pack(">I", len(name)) + name
+        payload += struct.pack(">i", -1 if num is None else num)   # masked: any value
+        payload += struct.pack(">d", mag)
+    tag = "BINARY2" if binary2 else "BINARY"
+    doc = _doc(f"""<TABLE>
+      <FIELD name="name" datatype="char" arraysize="*"/>
+      <FIELD name="num" datatype="int"/>
+      <FIELD name="mag" datatype="double" unit="mag"/>
+      <DATA><{tag}><STREAM encoding="base64">
+{base64.encodebytes(bytes(payload)).decode()}</STREAM></{tag}></DATA></TABLE>""")
+    src = _write(tmp_path / "hb.xml", doc)
+    out = tmp_path / "hb.parquet"
+    assert results.to_parquet(src, out).rows == 257
+    ref, got = reference(src), results.load_table(out)
+    for name in ref.colnames:
+        assert_same_column(ref[name], got[name], name)
+    assert list(got["name"][:3]) == [r[0].decode() for r in rows[:3]]
 
 
 def test_tabledata_conventions_by_hand(tmp_path):
@@ -311,6 +361,21 @@ def test_truncated_documents_are_refused_and_leave_no_file(tmp_path, fmt):
             results.to_parquet(src, out)
         assert not out.exists()
         assert [p.name for p in tmp_path.iterdir() if "partial" in p.name] == []
+
+
+def test_values_that_do_not_fit_their_datatype_are_refused(tmp_path):
+    # VOTable 1.4 §2.1: unsignedByte is 0..255; "abc" is no number.
+    for cell in ("300", "abc"):
+        src = _write(tmp_path / "fit.xml", _doc(
+            '<TABLE><FIELD name="b" datatype="unsignedByte"/>'
+            f"<DATA><TABLEDATA><TR><TD>{cell}</TD></TR></TABLEDATA></DATA></TABLE>"))
+        with pytest.raises(ServiceResponseInvalid, match="'b'"):
+            results.to_parquet(src, tmp_path / "fit.parquet")
+
+
+def test_byte_order_mark_is_accepted(tmp_path):
+    src = _write(tmp_path / "bom.xml", b"\xef\xbb\xbf" + _doc(_ONE_ROW_TABLE).encode())
+    assert results.scan(src).rows == 2
 
 
 def test_rows_with_missing_cells_are_refused(tmp_path):
