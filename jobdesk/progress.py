@@ -188,8 +188,10 @@ class CardProgress(Progress):
         if job_id:
             self.button.add_class(f"jobdesk-job-{job_id}")
         self.button.on_click(lambda _button: self.cancel())
+        for part in (self.badge, self.clock, self.count, self.bar):
+            part.layout.margin = "0 12px 0 0"
         row = w.HBox([self.badge, self.clock, self.count, self.bar, self.button],
-                     layout=w.Layout(align_items="center", gap="12px"))
+                     layout=w.Layout(align_items="center"))
         self.card = w.VBox([self.title, row, self.message],
                            layout=w.Layout(border="1px solid var(--jp-border-color2, #ccc)",
                                            padding="6px 10px", margin="4px 0",
