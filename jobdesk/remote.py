@@ -282,7 +282,7 @@ class Remote:
         if response.status_code == 404:
             summary = self.status(job_url).error_summary  # no detail document: the summary is all
             return summary or ""
-        return _document_message(response.content, response.headers.get("Content-Type"))
+        return _document_message(response.content)
 
     def find(self, *, run_id: str, after: str, adql: str | None = None) -> list[str]:
         """Job URLs created at or after ``after`` whose RUNID is ``run_id``; newest first.
@@ -617,7 +617,7 @@ def _error_votable_message(body: bytes) -> str | None:
     return " ".join((errors[-1].text or "").split()) or "the service reported an error"
 
 
-def _document_message(body: bytes, content_type: str | None) -> str:
+def _document_message(body: bytes) -> str:
     """An error document's message: a VOTable's QUERY_STATUS text, or plain text as it is."""
     message = _error_votable_message(body)
     if message is not None:
@@ -638,7 +638,7 @@ def _response_message(response: requests.Response) -> str:
         body = response.content[:65536]
     except requests.exceptions.RequestException:
         return "(no readable body)"
-    message = _document_message(body, response.headers.get("Content-Type"))
+    message = _document_message(body)
     message = " ".join(re.sub(r"<[^>]{0,200}>", " ", message).split())  # strip stray HTML tags
     return _shorten(message or response.reason or "(empty answer)")
 
