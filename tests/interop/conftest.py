@@ -9,7 +9,6 @@ from __future__ import annotations
 
 import os
 import shutil
-import subprocess
 import time
 import uuid
 from pathlib import Path
@@ -17,29 +16,9 @@ from pathlib import Path
 import pytest
 import requests
 
+from interop_support import REQUIRED, TAP_URL, dachs_cmd, server_available
+
 HERE = Path(__file__).resolve().parent
-PORT = int(os.environ.get("JOBDESK_INTEROP_PORT", "8791"))
-TAP_URL = os.environ.get("JOBDESK_INTEROP_URL", f"http://127.0.0.1:{PORT}/tap").rstrip("/")
-REQUIRED = os.environ.get("JOBDESK_INTEROP_REQUIRED", "") not in ("", "0", "false", "no")
-
-# The invented table that tests/interop/rd/q.rd imports (20000 rows, fixed seed) and the slow
-# view over its first 400 rows that sleeps 0.25 s per returned row.
-TABLE = "driftcat.objects"
-SLOW = "driftcat.slow"
-TABLE_ROWS = 20000
-SLOW_SECONDS_PER_ROW = 0.25
-
-
-def server_available(timeout: float = 5.0) -> str | None:
-    """None when the server answers its VOSI availability with true, else the reason."""
-    try:
-        r = requests.get(f"{TAP_URL}/availability", timeout=timeout)
-    except requests.RequestException as exc:
-        return f"{exc.__class__.__name__}: {exc}"
-    if r.status_code != 200 or b"<avl:available>true" not in r.content:
-        return f"HTTP {r.status_code}: {r.text[:200]}"
-    return None
-
 
 _availability: dict[str, str | None] = {}
 
@@ -82,31 +61,6 @@ def http():
         yield session
 
 
-def server_jobs_with(session: requests.Session, text: str, *, after: str | None = None) -> list[str]:
-    """URLs of the server's jobs whose QUERY parameter contains ``text`` (read job by job: the
-    job list itself carries only id, href and phase on this server)."""
-    from xml.etree import ElementTree as ET   # our own server's answer; nothing untrusted
-
-    params = {"AFTER": after} if after else None
-    listing = session.get(f"{TAP_URL}/async", params=params, timeout=30)
-    listing.raise_for_status()
-    ns = {"uws": "http://www.ivoa.net/xml/UWS/v1.0", "xlink": "http://www.w3.org/1999/xlink"}
-    found = []
-    for ref in ET.fromstring(listing.content).findall("uws:jobref", ns):
-        href = ref.get("{http://www.w3.org/1999/xlink}href")
-        doc = session.get(href, timeout=30)
-        if doc.status_code != 200:
-            continue
-        for p in ET.fromstring(doc.content).iter("{http://www.ivoa.net/xml/UWS/v1.0}parameter"):
-            if p.get("id", "").lower() == "query" and text in (p.text or ""):
-                found.append(href)
-    return found
-
-
-def _dachs_cmd(*args: str) -> subprocess.CompletedProcess:
-    return subprocess.run(["dachs", *args], cwd="/tmp", capture_output=True, text=True, timeout=60)
-
-
 @pytest.fixture
 def dachs_control():
     """Stop and restart the server from inside a test (needs the dachs command and root, as in
@@ -116,7 +70,7 @@ def dachs_control():
 
     class Control:
         def stop(self):
-            _dachs_cmd("serve", "stop")
+            dachs_cmd("serve", "stop")
             for _ in range(100):
                 if server_available(timeout=1) is not None:
                     return
@@ -126,7 +80,7 @@ def dachs_control():
         def start(self):
             if server_available(timeout=1) is None:
                 return
-            done = _dachs_cmd("serve", "start")
+            done = dachs_cmd("serve", "start")
             for _ in range(120):
                 if server_available(timeout=1) is None:
                     return

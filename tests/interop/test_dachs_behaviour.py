@@ -7,7 +7,6 @@ re-checked.  They talk to the server directly, never through jobdesk.
 
 from __future__ import annotations
 
-import io
 import os
 import re
 import signal
@@ -18,7 +17,7 @@ import pytest
 import pyvo
 from astropy.table import Table
 
-from conftest import SLOW, TABLE, TAP_URL, server_jobs_with
+from interop_support import SLOW, TABLE, TAP_URL, server_jobs_with
 
 UWS = "{http://www.ivoa.net/xml/UWS/v1.0}"
 

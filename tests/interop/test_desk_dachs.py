@@ -8,13 +8,11 @@ a unique string literal so that the test finds its own jobs among everyone else'
 from __future__ import annotations
 
 import json
-import os
 import signal
 import subprocess
 import sys
 import textwrap
 import time
-import warnings
 
 import numpy as np
 import pytest
@@ -27,7 +25,7 @@ from jobdesk.errors import (
     JobAborted, JobFailed, QueryRejected, ResultTruncated, TruncatedResultWarning, WaitTimeout,
 )
 
-from conftest import SLOW, TABLE, TAP_URL, server_jobs_with
+from interop_support import SLOW, TABLE, TAP_URL, server_jobs_with
 
 WAIT = 120   # seconds a test waits for a job at most (generous: CI machines vary)
 

@@ -13,7 +13,7 @@ import pytest
 from jobdesk import Desk
 from jobdesk.errors import ServiceUnreachable
 
-from conftest import TABLE, TAP_URL, server_available
+from interop_support import TABLE, TAP_URL, server_available
 
 WAIT = 120
 
