@@ -98,7 +98,8 @@ export class JobDeskPanel extends Widget {
     });
     this.search.type = 'search';
     this.search.className = 'jd-search';
-    this.search.placeholder = 'Search label, query or id';
+    this.search.placeholder = 'Search';
+    this.search.title = 'Search labels, query text or a job id';
     this.search.setAttribute('aria-label', 'Search jobs');
     this.search.addEventListener('input', () => {
       window.clearTimeout(this.searchDelay);

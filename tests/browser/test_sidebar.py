@@ -101,6 +101,14 @@ def test_the_whole_story(lab, page, taps):
 
     # A few more phases for the picture, then the screenshot of the sidebar.
     desk.submit(slow.url, QUERY.replace("TOP 7", "TOP 3"), label="still running")
+    handle = page.locator("#jp-main-split-panel > .lm-SplitPanel-handle").first
+    box = handle.bounding_box()
+    if box:  # widen the sidebar for the picture
+        page.mouse.move(box["x"] + box["width"] / 2, box["y"] + box["height"] / 2)
+        page.mouse.down()
+        page.mouse.move(box["x"] + 140, box["y"] + box["height"] / 2, steps=5)
+        page.mouse.up()
+    page.mouse.move(900, 700)
     page.wait_for_timeout(1500)
     DOCS.mkdir(exist_ok=True)
     page.locator("#jobdesk-sidebar").screenshot(path=str(DOCS / "sidebar.png"))
