@@ -13,7 +13,7 @@ import time
 import pytest
 import requests
 
-from conftest import open_sidebar, start_lab
+from lab_helpers import open_sidebar, start_lab
 from jobdesk.index import Index
 
 JOBS = 10_000

@@ -14,7 +14,7 @@ from pathlib import Path
 import pytest
 import requests
 
-from conftest import open_sidebar, start_lab
+from lab_helpers import open_sidebar, start_lab
 from jobdesk.desk import Desk
 from jobdesk.localtap import serve
 
