@@ -32,10 +32,10 @@ __all__ = ["ResultSummary", "to_parquet", "scan", "load_table", "load_frame", "e
            "read_metadata"]
 
 READ_CHUNK = 1 << 20          # bytes fed to the XML parser at a time
-BATCH_CELLS = 500_000         # cells per Arrow batch: bounds memory whatever the column count
+BATCH_CELLS = 100_000         # cells per Arrow batch: bounds memory whatever the column count
 BATCH_ROWS = 50_000
 ROW_GROUP_ROWS = 1_000_000    # larger row groups read back faster ...
-ROW_GROUP_BYTES = 24 << 20    # ... but are held in memory until written
+ROW_GROUP_BYTES = 8 << 20     # ... but are held, and encoded, in memory (peak ~3x this)
 SUMMARY_KEY = "jobdesk.summary"
 METADATA_KEY = "jobdesk.metadata"
 _FIELD_KEYS = ("name", "datatype", "arraysize", "unit", "ucd", "description", "xtype", "utype")
