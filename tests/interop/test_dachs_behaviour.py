@@ -240,6 +240,10 @@ def test_delete_of_an_executing_job_does_not_stop_it(http, marker):
     job_id = job.rstrip("/").rsplit("/", 1)[1]
     run(http, job)
     assert wait_for(http, job, {"EXECUTING"}) == "EXECUTING"
+    for _ in range(100):   # the worker process shows up shortly after the phase says EXECUTING
+        if _taprun_pids(job_id):
+            break
+        time.sleep(0.1)
     assert len(_taprun_pids(job_id)) == 1
     r = http.delete(job, allow_redirects=False, timeout=30)
     assert r.status_code == 303 and r.headers["Location"].endswith("/async")   # UWS 1.1 §2.2.3.3
