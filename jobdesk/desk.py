@@ -177,15 +177,17 @@ class Desk:
                 "layers": [{"name": "personal", "kind": "personal", "location": str(self.root),
                             "entries": entries, "bytes": size}]}
 
-    def step(self, *, owner: str | None = None) -> int:
+    def step(self, *, owner: str | None = None, service: str | None = None) -> int:
         """Advance every job no live process is driving, once, without blocking; return count.
 
-        The Jupyter server's poller calls this so that jobs whose kernel died still finish.
+        The Jupyter server's poller calls this so that jobs whose kernel died still finish;
+        a job waiting for a free slot calls it for its service, so the slot frees even when
+        the job holding it has no waiter of its own.
         """
         owner = owner or self.owner
         advanced = 0
         for record in self.index.list(phase=sorted(phases.ACTIVE | {phases.COMPLETED}),
-                                      limit=None):
+                                      service=service, limit=None):
             if record["phase"] == phases.COMPLETED and record.get("parquet_sha256"):
                 continue
             try:
@@ -404,7 +406,7 @@ class Job:
         wait (``WaitTimeout``); the job itself goes on either way.
         """
         deadline = None if timeout is None else time.monotonic() + timeout
-        display = _progress(self.title) if progress else None
+        display = _progress(self.title, self.id) if progress else None
         t0 = time.monotonic()
         unreachable = 0
         record = self.record
@@ -429,6 +431,7 @@ class Job:
                 try:
                     if record["phase"] == phases.LOCAL:
                         if self.desk._try_start(record)["phase"] == phases.LOCAL:
+                            self.desk.step(service=record["service"])
                             _sleep_until(slice_end, 0.5)
                     elif self.desk.index.take_lease(self.id, self.desk.owner, LEASE_SECONDS):
                         try:
@@ -526,12 +529,12 @@ class Job:
         return results.preview(path, rows=rows) | {"bytes": self.record.get("result_bytes")}
 
 
-def _progress(title: str):
+def _progress(title: str, job_id: str | None = None):
     try:
         from jobdesk.progress import Progress
     except ImportError:  # the display module is optional at run time
         return None
-    return Progress.for_environment(title)
+    return Progress.for_environment(title, job_id=job_id)
 
 
 def _sleep_until(end: float, step: float) -> None:

@@ -24,7 +24,7 @@ def export(table, prov: dict, path: Path | str) -> list[Path]:
         raise ValueError(f"cannot tell the format of {path.name}; use one of "
                          + ", ".join(sorted(FORMATS)))
     table = table.copy(copy_data=False)
-    table.meta = {k: v for k, v in table.meta.items() if k not in ("comments",)}
+    table.meta = {}  # the provenance below replaces the loader's own metadata
     if fmt == "fits":
         from astropy.io import fits
         hdu = fits.table_to_hdu(table)

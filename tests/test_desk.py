@@ -1,0 +1,373 @@
+"""The durable job manager end to end: real HTTP to the embedded service, real SQLite files.
+
+Each test names the user story of the job-manager issue it proves (numbers in brackets).
+"""
+
+from __future__ import annotations
+
+import json
+import multiprocessing as mp
+import os
+import signal
+import subprocess
+import sys
+import time
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pytest
+import requests
+from astropy.coordinates import SkyCoord
+from astropy.io import fits
+import astropy.units as u
+
+from jobdesk import (
+    Desk, JobLost, NotRepeatableWarning, QueryRejected, ResultTruncated, ServiceError,
+    TruncatedResultWarning, WaitTimeout,
+)
+from jobdesk import phases
+from jobdesk.localtap import serve
+
+ROWS = 3000
+CONE = ("SELECT source_id, ra, dec, mag_lime, parallax FROM orrery.sources "
+        "WHERE 1 = CONTAINS(POINT('ICRS', ra, dec), CIRCLE('ICRS', 150.0, 20.0, 25.0)) "
+        "ORDER BY source_id")
+
+
+@pytest.fixture(scope="module")
+def tap(tmp_path_factory):
+    with serve(state=tmp_path_factory.mktemp("tap"), rows=ROWS, exec_delay=0.3) as service:
+        yield service
+
+
+@pytest.fixture
+def desk(tmp_path):
+    return Desk(tmp_path / "desk", wait_window=5)
+
+
+def _created(tap) -> int:
+    return tap.stats()["jobs_created"]
+
+
+def _requests(tap) -> int:
+    return tap.stats()["requests"]
+
+
+# --- [1] submit, wait, table -----------------------------------------------------------------
+
+
+def test_submit_wait_table_keeps_units_and_matches_pyvo(tap, desk):
+    import pyvo
+
+    job = desk.submit(tap.url, CONE, label="cone")
+    assert job.phase in phases.ACTIVE | {phases.COMPLETED}
+    table = job.wait(progress=False).table()
+    assert job.phase == phases.COMPLETED and job.rows == len(table) > 0
+    assert str(table["ra"].unit) == "deg" and table["ra"].description
+    # Independent client: pyvo reading the same service must give the same rows.
+    reference = pyvo.dal.TAPService(tap.url).run_sync(CONE).to_table()
+    assert list(table["source_id"]) == list(reference["source_id"])
+    np.testing.assert_allclose(table["dec"], reference["dec"])
+    # Independent geometry truth: astropy's separation (the cone radius is 25 deg).
+    sep = SkyCoord(table["ra"], table["dec"], unit="deg").separation(
+        SkyCoord(150.0, 20.0, unit="deg"))
+    assert (sep <= 25 * u.deg).all()
+    frame = job.frame()
+    assert list(frame["source_id"]) == list(table["source_id"])
+
+
+# --- [2] kernel restart and concurrent kernels share one server job --------------------------
+
+_KERNEL = """
+import sys
+from jobdesk import Desk
+job = Desk(sys.argv[1]).submit(sys.argv[2], sys.argv[3])
+print(job.id, flush=True)
+job.wait(progress=False)
+"""
+
+
+def test_killed_kernel_job_is_reattached_not_resubmitted(tmp_path):
+    with serve(state=tmp_path / "tap", rows=ROWS, exec_delay=3.0) as tap:
+        root = tmp_path / "desk"
+        query = "SELECT TOP 5 source_id FROM orrery.sources ORDER BY source_id"
+        child = subprocess.Popen([sys.executable, "-c", _KERNEL, str(root), tap.url, query],
+                                 stdout=subprocess.PIPE, text=True)
+        job_id = child.stdout.readline().strip()
+        desk = Desk(root)
+        for _ in range(100):
+            if desk.job(job_id).record.get("job_url"):
+                break
+            time.sleep(0.05)
+        child.send_signal(signal.SIGKILL)
+        child.wait()
+        again = desk.submit(tap.url, query)
+        assert again.id == job_id
+        assert again.wait(progress=False).rows == 5
+        assert _created(tap) == 1, "no second server job"
+
+
+def _submit_at(root, url, query, start, out):
+    while time.time() < start:
+        time.sleep(0.001)
+    out.put(Desk(root).submit(url, query).id)
+
+
+def test_two_kernels_at_once_share_one_server_job(tmp_path):
+    with serve(state=tmp_path / "tap", rows=ROWS, exec_delay=0.5) as tap:
+        root = tmp_path / "desk"
+        Desk(root)
+        ctx = mp.get_context("fork")
+        out = ctx.Queue()
+        start = time.time() + 1.0
+        procs = [ctx.Process(target=_submit_at, args=(root, tap.url, CONE, start, out))
+                 for _ in range(4)]
+        for p in procs:
+            p.start()
+        ids = {out.get(timeout=60) for _ in procs}
+        for p in procs:
+            p.join(30)
+        assert len(ids) == 1
+        assert _created(tap) == 1
+
+
+# --- [3] cache hits, refresh, max_age --------------------------------------------------------
+
+
+def test_cache_hit_needs_no_service(tmp_path):
+    root = tmp_path / "desk"
+    with serve(state=tmp_path / "tap", rows=ROWS, port=0) as tap:
+        url = tap.url
+        first = Desk(root).submit(url, CONE).wait(progress=False)
+        rows = first.rows
+    # The service is gone (stopped, port closed): the same query is answered from the cache.
+    with pytest.raises(requests.ConnectionError):
+        requests.get(url + "/availability", timeout=2)
+    again = Desk(root).submit(url, "select SOURCE_ID, ra, dec, mag_lime, parallax\n"
+                              "from orrery.sources -- same query, other spelling of keywords\n"
+                              "where 1 = contains(point('ICRS', ra, dec), "
+                              "circle('ICRS', 150.0, 20.0, 25.0)) order by source_id"
+                              .replace("SOURCE_ID", "source_id"))
+    assert again.id == first.id and again.rows == rows
+    assert len(again.table()) == rows
+
+
+def test_refresh_and_max_age_run_anew(tap, desk):
+    first = desk.submit(tap.url, CONE + " ").wait(progress=False)
+    before = _created(tap)
+    assert desk.submit(tap.url, CONE).id == first.id
+    assert desk.submit(tap.url, CONE, max_age=3600).id == first.id
+    time.sleep(0.05)
+    stale = desk.submit(tap.url, CONE, max_age=0.01)
+    assert stale.id != first.id
+    fresh = desk.submit(tap.url, CONE, refresh=True)
+    assert fresh.id not in (first.id, stale.id)
+    assert _created(tap) == before + 2
+
+
+def test_no_request_reaches_the_service_on_a_hit(tap, desk):
+    desk.submit(tap.url, CONE).wait(progress=False)
+    before = _requests(tap)
+    desk.submit(tap.url, CONE).table()
+    assert _requests(tap) == before + 0
+
+
+# --- [4] keys at the desk: what shares and what does not -------------------------------------
+
+
+def test_identifier_case_and_literals_make_new_jobs(tap, desk):
+    a = desk.submit(tap.url, "SELECT TOP 3 source_id FROM orrery.sources ORDER BY source_id")
+    b = desk.submit(tap.url, "select top 3 source_id from orrery.sources order by source_id")
+    c = desk.submit(tap.url, "SELECT TOP 3 SOURCE_ID FROM orrery.sources ORDER BY source_id")
+    assert a.id == b.id != c.id
+    # Services name output columns after the query's spelling, so the difference is real.
+    assert c.wait(progress=False).table().colnames != a.wait(progress=False).table().colnames
+
+
+def test_not_repeatable_query_warns(tap, desk):
+    with pytest.warns(NotRepeatableWarning):
+        desk.submit(tap.url, "SELECT TOP 3 source_id FROM orrery.sources")
+
+
+# --- [5] overflow -----------------------------------------------------------------------------
+
+
+def test_truncated_result_is_never_served_as_complete(tap, desk):
+    # DALI 1.1 §4.4.1 (QUERY_STATUS=OVERFLOW after the table) is what the service writes.
+    with pytest.warns(TruncatedResultWarning, match="cut at 50 rows"):
+        job = desk.submit(tap.url, "SELECT source_id FROM orrery.sources ORDER BY source_id",
+                          maxrec=50).wait(progress=False)
+    assert job.truncated is True and job.rows == 50
+    with pytest.raises(ResultTruncated, match="50 rows") as info:
+        job.table()
+    assert info.value.rows == 50 and "maxrec" in str(info.value)
+    assert len(job.table(allow_truncated=True)) == 50
+    full = desk.submit(tap.url, "SELECT source_id FROM orrery.sources ORDER BY source_id",
+                       maxrec=ROWS + 10).wait(progress=False)
+    assert full.truncated is False and len(full.table()) == ROWS
+
+
+# --- [6] failures -----------------------------------------------------------------------------
+
+
+def test_bad_adql_carries_the_services_message(tap, desk):
+    with pytest.raises(QueryRejected) as info:
+        desk.submit(tap.url, "SELECT source_id FORM orrery.sources").wait(progress=False)
+    text = str(info.value)
+    assert "FORM" in text or "line" in text.lower()
+    assert info.value.hint
+    assert desk.jobs()[0].phase == phases.ERROR
+
+
+def test_unknown_column_error(tap, desk):
+    with pytest.raises(QueryRejected, match="no_such_col"):
+        desk.submit(tap.url, "SELECT no_such_col FROM orrery.sources").wait(progress=False)
+
+
+def test_overloaded_service_is_retried(tmp_path):
+    with serve(state=tmp_path / "tap", rows=ROWS, fail_first=3) as tap:
+        job = Desk(tmp_path / "d").submit(tap.url, CONE).wait(progress=False)
+        assert job.phase == phases.COMPLETED
+        assert job.record["requests"] >= 3 + 3  # the refused ones count too
+
+
+def test_service_down_is_a_clear_error(desk):
+    with pytest.raises(ServiceError) as info:
+        Desk(desk.root, attempts=2).submit("http://127.0.0.1:9/tap", CONE)
+    assert "127.0.0.1:9" in str(info.value) and info.value.hint
+
+
+def test_job_destroyed_before_fetch_is_reported_lost(tmp_path):
+    with serve(state=tmp_path / "tap", rows=ROWS, exec_delay=1.0) as tap:
+        desk = Desk(tmp_path / "d")
+        job = desk.submit(tap.url, CONE)
+        tap.configure(lose_jobs=True)
+        with pytest.raises(JobLost) as info:
+            job.wait(progress=False)
+        assert "refresh=True" in str(info.value)
+        assert job.phase == phases.LOST
+        tap.configure(lose_jobs=False)
+        assert desk.submit(tap.url, CONE).id != job.id, "a lost job is not reused"
+
+
+def test_wait_timeout_leaves_the_job_running(tmp_path):
+    with serve(state=tmp_path / "tap", rows=ROWS, exec_delay=3.0) as tap:
+        desk = Desk(tmp_path / "d")
+        job = desk.submit(tap.url, CONE)
+        with pytest.raises(WaitTimeout):
+            job.wait(timeout=0.5, progress=False)
+        assert job.phase in phases.ACTIVE
+        assert job.wait(progress=False).phase == phases.COMPLETED
+
+
+# --- [7] WAIT versus polling: requests per job -----------------------------------------------
+
+
+@pytest.mark.parametrize("no_wait", [False, True])
+def test_requests_per_job_are_counted(tmp_path, no_wait):
+    with serve(state=tmp_path / "tap", rows=ROWS, exec_delay=2.0, no_wait=no_wait) as tap:
+        job = Desk(tmp_path / "d", wait_window=10).submit(tap.url, CONE).wait(progress=False)
+        spent = job.record["requests"]
+        assert spent == _requests(tap)
+        if not no_wait:
+            # create + run + a couple of blocking WAITs + result (UWS 1.1 §2.2.1.2)
+            assert spent <= 8
+        else:
+            assert spent > 4  # polling costs more requests
+
+
+# --- [8] streaming, checksums, interrupted downloads -----------------------------------------
+
+
+def test_interrupted_download_still_gives_the_verified_result(tmp_path):
+    with serve(state=tmp_path / "tap", rows=ROWS, drop_result_after=5000,
+               drop_result_times=2) as tap:
+        desk = Desk(tmp_path / "d")
+        job = desk.submit(tap.url, CONE).wait(progress=False)
+        record = job.record
+        raw = desk.store.path(record["result_sha256"])
+        assert desk.store.verify(record["result_sha256"]) and desk.store.verify(
+            record["parquet_sha256"])
+        # The file equals a clean download of the same result.
+        clean = requests.get(record["job_url"] + "/results/result").content
+        assert raw.read_bytes() == clean
+        assert not any(desk.store.tmp.iterdir()), "no partial file is left behind"
+
+
+# --- [9] provenance ---------------------------------------------------------------------------
+
+
+def test_provenance_and_exports(tap, desk, tmp_path):
+    job = desk.submit(tap.url, CONE, label="cone").wait(progress=False)
+    prov = job.provenance()
+    assert prov["service"] == tap.url and prov["adql"] == CONE and prov["rows"] == job.rows
+    assert [h["phase"] for h in prov["phase_history"]][-1] == phases.COMPLETED
+    assert {c["name"]: c["unit"] for c in prov["columns"]}["ra"] == "deg"
+    assert prov["software"]["astropy"] and prov["software"]["pyvo"]
+    assert "orrery.sources" in job.account() and str(job.rows) in job.account()
+    out = tmp_path / "cone.fits"
+    written = job.export(out)
+    header = fits.getheader(out, 1)
+    assert header["JDROWS"] == str(job.rows) and any("orrery" in h for h in header["HISTORY"])
+    # An independent reader of W3C PROV-JSON: the `prov` package.
+    import prov.model
+    doc = prov.model.ProvDocument.deserialize(content=written[1].read_text(), format="json")
+    assert len(list(doc.get_records(prov.model.ProvActivity))) == 1
+    assert len(list(doc.get_records(prov.model.ProvGeneration))) == 1
+
+
+# --- [10] credentials never written -----------------------------------------------------------
+
+
+def test_token_never_reaches_disk(tap, tmp_path):
+    secret = "s3cr3t-token-value-0123456789"
+    session = requests.Session()
+    session.headers["Authorization"] = f"Bearer {secret}"
+    desk = Desk(tmp_path / "d", session=session)
+    job = desk.submit(tap.url, CONE).wait(progress=False)
+    assert job.record["scope"] == "authenticated"
+    job.export(tmp_path / "d" / "out.vot")
+    for path in (tmp_path / "d").rglob("*"):
+        if path.is_file():
+            assert secret.encode() not in path.read_bytes(), path
+    assert secret not in json.dumps(job.provenance())
+
+
+# --- [12] per-service limit --------------------------------------------------------------------
+
+
+def test_limit_holds_extra_jobs_locally_and_starts_them_in_order(tmp_path):
+    with serve(state=tmp_path / "tap", rows=ROWS, exec_delay=1.0) as tap:
+        desk = Desk(tmp_path / "d", limits={tap.url: 1})
+        jobs = [desk.submit(tap.url, f"SELECT TOP {n} source_id FROM orrery.sources "
+                                     "ORDER BY source_id") for n in (1, 2, 3)]
+        assert [j.phase == phases.LOCAL for j in jobs] == [False, True, True]
+        jobs[2].wait(progress=False)   # waiting on the last still starts them in order
+        for j in jobs[:2]:
+            j.wait(progress=False)
+        started = [desk.job(j.id).record["submitted"] for j in jobs]
+        assert started == sorted(started)
+        assert [j.rows for j in jobs] == [1, 2, 3]
+
+
+# --- [13] the command line --------------------------------------------------------------------
+
+
+def test_cli_lists_shows_and_exports(tap, tmp_path):
+    root = tmp_path / "d"
+    job = Desk(root).submit(tap.url, CONE, label="cone").wait(progress=False)
+
+    def cli(*args):
+        return subprocess.run([sys.executable, "-m", "jobdesk.cli", "--root", str(root), *args],
+                              capture_output=True, text=True, timeout=60)
+
+    listed = json.loads(cli("list", "--json").stdout)
+    assert [r["id"] for r in listed] == [job.id]
+    assert job.id in cli("list").stdout
+    shown = cli("show", job.id)
+    assert "COMPLETED" in shown.stdout and "orrery.sources" in shown.stdout
+    out = tmp_path / "x.parquet"
+    assert cli("export", job.id, str(out)).returncode == 0 and out.exists()
+    missing = cli("show", "nope")
+    assert missing.returncode == 2 and "no job" in missing.stderr
