@@ -76,8 +76,8 @@ TYPE_NAMES = frozenset("""
 
 # Warnings: reasons a cached answer may differ from a re-run (ADQL 2.1 §2.2: "The order of the
 # rows MAY be arbitrary unless an ORDER BY clause is specified"; RAND() is random by definition).
-WARN_TOP = "TOP without ORDER BY: which rows come back is the service's choice and may change on a re-run"
-WARN_OFFSET = "OFFSET without ORDER BY: which rows are skipped is the service's choice and may change on a re-run"
+WARN_TOP = "TOP without ORDER BY: the service chooses which rows come back"
+WARN_OFFSET = "OFFSET without ORDER BY: the service chooses which rows are skipped"
 WARN_RAND = "RAND(): random values differ on every run"
 
 _PARSER_LIMIT = 200_000  # characters; longer queries (huge IN lists) skip sqlglot, use heuristics
@@ -337,9 +337,10 @@ _DEFAULT_PORTS = {"http": 80, "https": 443}
 def service_id(url: str) -> str:
     """The normalised base URL that names a TAP service in keys and records.
 
-    Scheme and host lower-cased (RFC 3986 §6.2.2.1), default port dropped (§6.2.3), no trailing
-    '/', no query or fragment.  User info (``user:password@``) is dropped: it is a credential,
-    and who asks is the key's ``scope``, never the secret.
+    Scheme and host lower-cased (RFC 3986 §6.2.2.1), default port dropped (§6.2.3; section
+    numbers from memory), no trailing '/', no query or fragment.  User info
+    (``user:password@``) is dropped: it is a credential, and who asks is the key's ``scope``,
+    never the secret.
     """
     if not isinstance(url, str):
         raise BadServiceURL(f"the service URL must be text, not {type(url).__name__}")
@@ -376,7 +377,7 @@ def query_key(service: str, adql: str, *, maxrec: int | None, fmt: str,
             raise TypeError("maxrec must be an integer or None")
         maxrec = operator.index(maxrec)
         if maxrec < 0:
-            raise ValueError(f"maxrec must be >= 0, got {maxrec}")   # TAP 1.1 §2.7.4 (from memory)
+            raise ValueError(f"maxrec must be >= 0, got {maxrec}")   # TAP 1.1 MAXREC (from memory)
     if not isinstance(fmt, str) or not fmt.strip():
         raise ValueError("fmt must be a non-empty response format, e.g. 'votable'")
     if not isinstance(scope, str) or not scope:
