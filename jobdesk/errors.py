@@ -139,6 +139,13 @@ class CacheCorrupt(JobdeskError):
     hint = "submit again with refresh=True to fetch a fresh copy; the bad file was set aside"
 
 
+class PublishRefused(JobdeskError):
+    """A result cannot go to a group cache: the layer is read-only or you may not write there."""
+
+    hint = ("ask the group's maintainer for write access, or list the group as read-only "
+            "(jobdesk.Group(location, readonly=True)); your own cache is unaffected")
+
+
 class StorageFull(JobdeskError):
     """The disk holding the cache is full or over quota; nothing half-written was kept."""
 
@@ -195,3 +202,7 @@ class NotRepeatableWarning(UserWarning):
 
 class TruncatedResultWarning(UserWarning):
     """A result was cut by MAXREC or a service limit; it holds fewer rows than the query selects."""
+
+
+class GroupCacheWarning(UserWarning):
+    """A group cache entry was skipped (corrupt, unreadable) or a publish failed; work went on."""
