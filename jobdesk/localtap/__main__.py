@@ -12,7 +12,7 @@ import sys
 import threading
 from pathlib import Path
 
-from jobdesk.localtap.faults import FaultSettings
+from jobdesk.localtap.faults import FAULT_NAMES, FaultSettings
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -55,14 +55,36 @@ def build_parser() -> argparse.ArgumentParser:
         help="longest a WAIT request blocks, in seconds")
     add("--execution-duration", type=int, default=defaults.execution_duration,
         help="default executionduration of new jobs in seconds (0: unlimited)")
+    # Legal behaviours of other servers (docs/localtap.md, "Imitating other servers").
+    add("--overflow-at-maxrec", action="store_true",
+        help="flag OVERFLOW whenever rows == MAXREC, even when nothing was cut")
+    add("--ignore-runid", action="store_true",
+        help="drop RUNID at creation and later; job documents and the list carry no runId")
+    add("--ignore-run-at-creation", action="store_true",
+        help="ignore PHASE=RUN, EXECUTIONDURATION and DESTRUCTION in the creating POST")
+    add("--second-run-errors", action="store_true",
+        help="PHASE=RUN on a QUEUED or EXECUTING job sends it to ERROR")
+    add("--sync-errors-200", action="store_true",
+        help="answer /sync errors with HTTP 200 (the error VOTable unchanged)")
+    add("--error-body-200", action="store_true",
+        help="result of a job not COMPLETED: HTTP 200 with an error VOTable; "
+             "{job}/error of a job not in ERROR: HTTP 200 with an empty body")
+    add("--has-detail-false", action="store_true",
+        help='errorSummary says hasDetail="false" although {job}/error serves the document')
+    add("--sparse-job-list", action="store_true",
+        help="job list entries carry the phase only (no runId, ownerId, creationTime)")
+    add("--wait-granularity", type=float, default=defaults.wait_granularity,
+        help="a WAIT re-checks the phase only every N seconds (0: wakes at the change)")
+    add("--delete-keeps-running", action="store_true",
+        help="DELETE of an EXECUTING job removes the job but leaves its worker running")
+    add("--aborted-lists-result", action="store_true",
+        help="an aborted job lists a result (an error VOTable) in its results")
     add("--sweep-interval", type=float, default=1.0,
         help="seconds between sweeps for jobs past their destruction time")
     return parser
 
 
-FAULT_ARGS = ("exec_delay", "queue_delay", "max_rec", "fail_first", "status_429",
-              "drop_result_after", "drop_result_times", "no_wait", "destruction", "max_running",
-              "slow_response", "lose_jobs", "max_wait", "execution_duration")
+FAULT_ARGS = FAULT_NAMES   # every setting has its flag (checked in tests)
 
 
 def main(argv: list[str] | None = None) -> int:

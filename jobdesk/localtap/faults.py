@@ -30,9 +30,29 @@ class FaultSettings:
     lose_jobs: bool = False          # job documents and sub-resources answer 404
     max_wait: float = 60.0           # the longest a WAIT blocks (s); UWS lets a server cut it
     execution_duration: int = 600    # default executionduration of new jobs (s, 0 = unlimited)
+    # Legal behaviours of other servers, imitated so clients are tested against them too
+    # (docs/localtap.md, "Imitating other servers"; measured on DaCHS 2.7, docs/interop.md).
+    overflow_at_maxrec: bool = False     # OVERFLOW whenever rows == MAXREC, even if nothing was cut
+    ignore_runid: bool = False           # RUNID dropped everywhere; no runId element
+    ignore_run_at_creation: bool = False  # PHASE/EXECUTIONDURATION/DESTRUCTION at creation dropped
+    second_run_errors: bool = False      # RUN on a QUEUED/EXECUTING job sends it to ERROR
+    sync_errors_200: bool = False        # /sync error VOTables come with HTTP 200
+    error_body_200: bool = False         # result of an unfinished/failed job: 200 + error VOTable;
+                                         # {job}/error of a job not in ERROR: 200, empty body
+    has_detail_false: bool = False       # errorSummary says hasDetail="false" ({job}/error still served)
+    sparse_job_list: bool = False        # job list entries carry the phase only
+    wait_granularity: float = 0.0        # WAIT re-checks the phase only every N s (0: at once)
+    delete_keeps_running: bool = False   # DELETE of an EXECUTING job leaves its worker running
+    aborted_lists_result: bool = False   # an aborted job lists a "result" (an error VOTable)
 
 
 FAULT_NAMES = tuple(f.name for f in dataclasses.fields(FaultSettings))
+
+# Every imitation at once: the behaviours measured on DaCHS 2.7 (docs/interop.md).
+LIKE_DACHS = {"overflow_at_maxrec": True, "ignore_runid": True, "ignore_run_at_creation": True,
+              "second_run_errors": True, "sync_errors_200": True, "error_body_200": True,
+              "has_detail_false": True, "sparse_job_list": True, "wait_granularity": 1.0,
+              "delete_keeps_running": True, "aborted_lists_result": True}
 
 
 class Faults:

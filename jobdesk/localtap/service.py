@@ -40,6 +40,7 @@ SERVER_SOFTWARE = f"jobdesk-localtap {_VERSION}"
 VOTABLE_TYPE = "application/x-votable+xml"
 _UPLOAD_NAME = re.compile(r"^[A-Za-z][A-Za-z0-9_]*$")
 _CHUNK = 64 * 1024
+ABORTED_RESULT = "aborted-result.xml"   # what the fault aborted_lists_result leaves behind
 
 
 class QueryProblem(Exception):
@@ -127,6 +128,27 @@ def error_text(exc: BaseException) -> str:
     return message
 
 
+def flag_overflow_at_maxrec(result, maxrec: int):
+    """Make ``result`` say OVERFLOW whenever it returns MAXREC rows, cut or not.
+
+    DALI 1.1 §4.4.1 asks for OVERFLOW only when rows were cut, and the engine knows whether
+    they were, so by default the flag is truthful.  Some servers flag it whenever rows == MAXREC
+    (they stop reading there); the fault ``overflow_at_maxrec`` imitates them.
+    """
+    rows = result.rows
+
+    def counted():
+        count = 0
+        for row in rows:
+            count += 1
+            yield row
+        if count >= maxrec:
+            result.overflow = True
+
+    result.rows = counted()
+    return result
+
+
 def _is_adql_error(exc: BaseException) -> bool:
     return type(exc).__name__ == "AdqlError" or hasattr(exc, "line") and hasattr(exc, "message")
 
@@ -190,6 +212,8 @@ class JobRunner:
             plan = plan_query(job.parameters, lambda part: _read_saved_part(job_dir, part),
                               tap.faults.max_rec)
             result = tap.engine.execute(plan.query, maxrec=plan.maxrec, uploads=plan.uploads or None)
+            if tap.faults.overflow_at_maxrec:
+                flag_overflow_at_maxrec(result, plan.maxrec)
             with open(partial, "wb") as out:
                 written = write_result(out, result, plan.serialization, infos=tap.infos(plan.query),
                                        should_stop=cancel.is_set)
@@ -523,7 +547,7 @@ class SyncHandler(TapHandler):
         try:
             plan = plan_query(params, self.read_part, self.tap.faults.max_rec)
         except QueryProblem as exc:
-            self.send_error_votable(str(exc))
+            self.send_error_votable(str(exc), status=self._client_error_status())
             return
         target = self.tap.state_dir / "sync" / f"{secrets.token_hex(8)}.part"
         try:
@@ -532,7 +556,7 @@ class SyncHandler(TapHandler):
         except Exception as exc:
             target.unlink(missing_ok=True)
             if _is_adql_error(exc) or isinstance(exc, QueryProblem):
-                self.send_error_votable(error_text(exc))
+                self.send_error_votable(error_text(exc), status=self._client_error_status())
             else:
                 self.send_error_votable(f"internal error while executing the query: "
                                         f"{type(exc).__name__}: {exc}", status=500)
@@ -541,9 +565,16 @@ class SyncHandler(TapHandler):
         await self.send_file(target, CONTENT_TYPES[plan.serialization], ranges=False,
                              delete_after=True)
 
+    def _client_error_status(self) -> int:
+        # DALI 1.1 §4.4: the error document is what counts; 400 by default, 200 with the fault
+        # ``sync_errors_200`` (as servers that always answer 200 do).  Internal errors stay 500.
+        return 200 if self.tap.faults.sync_errors_200 else 400
+
     def _run(self, plan: QueryPlan, target: Path):
         result = self.tap.engine.execute(plan.query, maxrec=plan.maxrec,
                                          uploads=plan.uploads or None)
+        if self.tap.faults.overflow_at_maxrec:
+            flag_overflow_at_maxrec(result, plan.maxrec)
         with open(target, "wb") as out:
             return write_result(out, result, plan.serialization, infos=self.tap.infos(plan.query))
 
@@ -574,16 +605,37 @@ class JobListHandler(TapHandler):
                     self.send_text(f"LAST={values[0]} is not a non-negative integer\n", status=400)
                     return
         jobs = self.tap.store.list(phases=phases or None, after=after, last=last)
-        self.send_xml(uws.job_list_xml(jobs, f"{self.base_url()}/async",
-                                       uws_1_0=self.tap.faults.no_wait))
+        faults = self.tap.faults
+        self.send_xml(uws.job_list_xml(jobs, f"{self.base_url()}/async", uws_1_0=faults.no_wait,
+                                       sparse=faults.sparse_job_list,
+                                       show_run_id=not faults.ignore_runid))
 
     def post(self):
         params = self.params()
+        faults = self.tap.faults
+        # UWS 1.1 §2.2.3.1: the job's own settings may come with the creating POST; they are job
+        # attributes, not query parameters.  The faults drop them, as some servers do.
         run_id = params.pop("RUNID", None)
         phase = params.pop("PHASE", None)
-        job = self.tap.store.create(params, run_id=run_id,
-                                    destruction_after=self.tap.faults.destruction,
-                                    execution_duration=self.tap.faults.execution_duration)
+        destruction = params.pop("DESTRUCTION", None)
+        duration = params.pop("EXECUTIONDURATION", None)
+        if faults.ignore_runid:
+            run_id = None
+        if faults.ignore_run_at_creation:
+            phase = destruction = duration = None
+        try:
+            when = uws.parse_iso(destruction) if destruction is not None else None
+            seconds = int(duration) if duration is not None else faults.execution_duration
+            if seconds < 0:
+                raise ValueError
+        except ValueError:
+            return self.send_text(f"DESTRUCTION={destruction} / EXECUTIONDURATION={duration}: "
+                                  "need an ISO 8601 time and a non-negative integer of seconds\n",
+                                  status=400)
+        job = self.tap.store.create(params, run_id=run_id, destruction_after=faults.destruction,
+                                    execution_duration=seconds)
+        if when is not None:
+            self.tap.store.update(job.id, destruction=when)
         job_dir = self.tap.store.job_dir(job.id)
         for _, location in _safe_specs(params.get("UPLOAD", "")):
             if location.startswith("param:"):
@@ -618,11 +670,15 @@ class JobHandler(TapHandler):
             job = await self._maybe_wait(job)
             if job is None:
                 return
-            self.send_xml(uws.job_xml(job, self.job_url(job_id), uws_1_0=self.tap.faults.no_wait))
+            faults = self.tap.faults
+            self.send_xml(uws.job_xml(job, self.job_url(job_id), uws_1_0=faults.no_wait,
+                                      show_run_id=not faults.ignore_runid,
+                                      has_detail=not faults.has_detail_false))
             return
         handlers = {
             "phase": lambda: self.send_text(job.phase),
-            "runid": lambda: self.send_text(job.run_id or ""),
+            "runid": lambda: self.send_text("" if self.tap.faults.ignore_runid
+                                            else job.run_id or ""),
             "destruction": lambda: self.send_text(uws.iso(job.destruction) or ""),
             "executionduration": lambda: self.send_text(str(job.execution_duration)),
             "quote": lambda: self.send_text(""),
@@ -641,6 +697,9 @@ class JobHandler(TapHandler):
         handler()
 
     def _send_job_error(self, job: uws.Job):
+        if job.phase != uws.ERROR and self.tap.faults.error_body_200:
+            self.send_text("")   # fault error_body_200: 200 with an empty body
+            return
         if job.phase != uws.ERROR:
             self.send_text(f"job {job.id} is {job.phase}, not ERROR: it has no error\n", status=404)
             return
@@ -675,7 +734,11 @@ class JobHandler(TapHandler):
             remaining = deadline - time.monotonic()
             if remaining <= 0:
                 break
-            await self.tap.wait_for_change(job.id, remaining)
+            step = self.tap.faults.wait_granularity
+            if step > 0:   # fault: look only every ``step`` seconds, as polling servers do
+                await asyncio.sleep(min(step, remaining))
+            else:
+                await self.tap.wait_for_change(job.id, remaining)
             current = self.tap.store.get(job.id)
             if current is None or current.phase != start_phase:
                 return current if current is not None else job
@@ -710,7 +773,8 @@ class JobHandler(TapHandler):
             self.tap.store.update(job.id, execution_duration=seconds)
             return self.redirect(self.job_url(job.id), status=303)
         if target in ("", "runid") and "RUNID" in params:
-            self.tap.store.update(job.id, run_id=params["RUNID"])
+            if not self.tap.faults.ignore_runid:   # the fault: answered as usual, but dropped
+                self.tap.store.update(job.id, run_id=params["RUNID"])
             return self.redirect(self.job_url(job.id), status=303)
         if target == "parameters" or target == "":
             if job.phase != uws.PENDING:
@@ -733,15 +797,34 @@ class JobHandler(TapHandler):
             elif job.phase not in uws.ACTIVE:
                 return self.send_text(f"job {job.id} is {job.phase}; it cannot run again — "
                                       "create a new job\n", status=400)
-            # already QUEUED or EXECUTING: RUN changes nothing (never restart a running job)
+            elif self.tap.faults.second_run_errors:
+                # fault: a repeated RUN breaks the job, as on servers with a strict state machine
+                message = (f"PHASE=RUN reached job {job.id} while it was {job.phase}: "
+                           f"there is no way from {job.phase} back to QUEUED")
+                if store.update(job.id, expect={uws.QUEUED, uws.EXECUTING}, phase=uws.ERROR,
+                                end_time=now, error_message=message, error_type="fatal"):
+                    self.tap.runner.cancel(job.id)
+                    self.tap.notify(job.id)
+            # else already QUEUED or EXECUTING: RUN changes nothing (never restart a running job)
         elif phase == "ABORT":
             if store.update(job.id, expect=set(uws.ACTIVE), phase=uws.ABORTED, end_time=now):
                 self.tap.runner.cancel(job.id)
+                if self.tap.faults.aborted_lists_result:
+                    self._leave_aborted_result(job)
                 self.tap.notify(job.id)
         else:
             return self.send_text(f"PHASE={phase} is not understood; use RUN or ABORT\n",
                                   status=400)
         self.redirect(self.job_url(job.id), status=303)
+
+    def _leave_aborted_result(self, job: uws.Job):
+        """Fault ``aborted_lists_result``: the aborted job lists a result that is no table."""
+        path = self.tap.store.job_dir(job.id) / ABORTED_RESULT
+        body = error_document(f"job {job.id} was aborted before its query finished",
+                              infos=[("QUERY", job.parameters.get("QUERY", ""))])
+        path.write_bytes(body)
+        self.tap.store.update(job.id, result_file=path.name, result_size=len(body),
+                              result_type=VOTABLE_TYPE)
 
     def delete(self, job_id: str, resource: str | None = None):
         if resource is not None:
@@ -753,6 +836,12 @@ class JobHandler(TapHandler):
 
     def _delete(self, job: uws.Job):
         # UWS 1.1 §2.2.3.2: deleting answers 303 to the job list; a running job is stopped first.
+        if self.tap.faults.delete_keeps_running and job.phase == uws.EXECUTING:
+            # fault: the job is forgotten at once, but its worker runs on to its end
+            if self.tap.store.delete(job.id):
+                self.tap.counters["jobs_destroyed"] += 1
+            self.tap.notify(job.id)
+            return self.redirect(f"{self.base_url()}/async", status=303)
         self.tap.store.update(job.id, expect=set(uws.ACTIVE), phase=uws.ABORTED)
         self.tap.destroy(job.id)
         self.redirect(f"{self.base_url()}/async", status=303)
@@ -771,7 +860,13 @@ class ResultHandler(TapHandler):
         job = None if self.tap.faults.lose_jobs else self.tap.store.get(job_id)
         if job is None:
             return self.send_text(f"no job {job_id} here\n", status=404)
-        if job.phase != uws.COMPLETED or not job.result_file:
+        listed = job.result_file and (job.phase == uws.COMPLETED or (
+            job.phase == uws.ABORTED and job.result_file == ABORTED_RESULT))
+        if not listed and self.tap.faults.error_body_200:
+            # fault: a non-result answered 200 with an error document, as some servers do
+            self.set_header("Content-Type", VOTABLE_TYPE)
+            return self.finish(error_document(f"job {job_id} is {job.phase}: no result file"))
+        if not listed:
             return self.send_text(f"job {job_id} is {job.phase}: no result\n", status=404)
         path = self.tap.store.job_dir(job_id) / job.result_file
         if not path.exists():

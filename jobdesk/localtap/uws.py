@@ -253,7 +253,9 @@ def _version(uws_1_0: bool) -> str:
 
 def results_xml(job: Job, job_url: str, *, root: bool) -> str:
     ns = f" {_NAMESPACES}" if root else ""
-    if job.phase != COMPLETED or not job.result_file:
+    # A result only when COMPLETED (UWS 1.1 §2.1.3); an ABORTED job has one only when the
+    # ``aborted_lists_result`` fault gave it one.
+    if job.phase not in (COMPLETED, ABORTED) or not job.result_file:
         return f"<uws:results{ns}/>"
     href = f"{job_url}/results/result"
     return (f"<uws:results{ns}><uws:result id=\"result\" xlink:type=\"simple\" xlink:href={_a(href)}"
@@ -267,11 +269,17 @@ def parameters_xml(job: Job, *, root: bool) -> str:
     return f"<uws:parameters{ns}>{items}</uws:parameters>"
 
 
-def job_xml(job: Job, job_url: str, *, uws_1_0: bool = False) -> str:
-    """The job document of UWS 1.1 §2.2.3, elements in the schema's order."""
+def job_xml(job: Job, job_url: str, *, uws_1_0: bool = False, show_run_id: bool = True,
+            has_detail: bool = True) -> str:
+    """The job document of UWS 1.1 §2.2.3, elements in the schema's order.
+
+    ``show_run_id=False`` leaves out runId (an optional element, §2.1.5); ``has_detail=False``
+    says hasDetail="false" although ``{job}/error`` serves the detail (a server-side mistake the
+    fault ``has_detail_false`` imitates).
+    """
     parts = [f'<?xml version="1.0" encoding="UTF-8"?>\n<uws:job{_version(uws_1_0)} {_NAMESPACES}>',
              f"<uws:jobId>{_x(job.id)}</uws:jobId>"]
-    if job.run_id is not None:
+    if job.run_id is not None and show_run_id:
         parts.append(f"<uws:runId>{_x(job.run_id)}</uws:runId>")
     parts.append(f"<uws:ownerId>{_x(job.owner)}</uws:ownerId>" if job.owner
                  else '<uws:ownerId xsi:nil="true"/>')
@@ -286,19 +294,26 @@ def job_xml(job: Job, job_url: str, *, uws_1_0: bool = False) -> str:
     parts.append(parameters_xml(job, root=False))
     parts.append(results_xml(job, job_url, root=False))
     if job.phase == ERROR and job.error_message:
-        parts.append(f'<uws:errorSummary type="{job.error_type or "fatal"}" hasDetail="true">'
+        detail = "true" if has_detail else "false"
+        parts.append(f'<uws:errorSummary type="{job.error_type or "fatal"}" hasDetail="{detail}">'
                      f"<uws:message>{_x(job.error_message)}</uws:message></uws:errorSummary>")
     parts.append("</uws:job>\n")
     return "\n".join(parts)
 
 
-def job_list_xml(jobs: list[Job], list_url: str, *, uws_1_0: bool = False) -> str:
-    """The job list of UWS 1.1 §2.2.2 with phase, runId, ownerId and creationTime per entry."""
+def job_list_xml(jobs: list[Job], list_url: str, *, uws_1_0: bool = False, sparse: bool = False,
+                 show_run_id: bool = True) -> str:
+    """The job list of UWS 1.1 §2.2.2 with phase, runId, ownerId and creationTime per entry;
+    ``sparse`` gives the phase only (the other three are optional, §2.2.2.1)."""
     parts = [f'<?xml version="1.0" encoding="UTF-8"?>\n<uws:jobs{_version(uws_1_0)} {_NAMESPACES}>']
     for job in jobs:
         entry = [f"<uws:jobref id={_a(job.id)} xlink:type=\"simple\" xlink:href={_a(list_url + '/' + job.id)}>",
                  f"<uws:phase>{job.phase}</uws:phase>"]
-        if job.run_id is not None:
+        if sparse:
+            entry.append("</uws:jobref>")
+            parts.append("".join(entry))
+            continue
+        if job.run_id is not None and show_run_id:
             entry.append(f"<uws:runId>{_x(job.run_id)}</uws:runId>")
         entry.append('<uws:ownerId xsi:nil="true"/>' if not job.owner
                      else f"<uws:ownerId>{_x(job.owner)}</uws:ownerId>")
