@@ -96,10 +96,6 @@ class Desk:
         if session is not None:
             self._sessions[sid] = session
         prepared = upload_tables.prepare(uploads)
-        canonical = keys.canonical_adql(adql)
-        for reason in canonical.warnings:
-            warnings.warn(NotRepeatableWarning(
-                f"{reason}: a cached answer may differ from a fresh run"), stacklevel=2)
         scope = self._scope_for(sid)
         digests = {name: sha for name, (_, sha) in prepared.items()}
         key = keys.query_key(sid, adql, maxrec=maxrec, fmt=fmt, uploads=digests, scope=scope)
@@ -112,6 +108,13 @@ class Desk:
                 fresh = oldest is None or (record.get("finished") or 0) >= oldest
                 return fresh and self.store.has(record["parquet_sha256"])
             return True  # still running somewhere: share it
+
+        known = None if refresh else self.index.find(key, reuse=reuse)
+        if known is not None:  # the fast path: no parse, no write lock
+            _warn_not_repeatable(known.get("warnings") or ())
+            return Job(self, known["id"], known)
+        canonical = keys.canonical_adql(adql)
+        _warn_not_repeatable(canonical.warnings)
 
         for name, (data, sha) in prepared.items():
             if not self.store.has(sha):
@@ -527,6 +530,12 @@ class Job:
         """The first rows and the column descriptions, JSON-safe, without loading everything."""
         path = self._result_path(allow_truncated=True)
         return results.preview(path, rows=rows) | {"bytes": self.record.get("result_bytes")}
+
+
+def _warn_not_repeatable(reasons) -> None:
+    for reason in reasons:
+        warnings.warn(NotRepeatableWarning(
+            f"{reason}: a cached answer may differ from a fresh run"), stacklevel=3)
 
 
 def _progress(title: str, job_id: str | None = None):

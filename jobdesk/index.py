@@ -184,6 +184,19 @@ class Index:
 
     # --- writing ------------------------------------------------------------------------------
 
+    def find(self, key: str, *, reuse: Callable[[dict], bool]) -> dict | None:
+        """The newest record for ``key`` that ``reuse`` accepts, read without taking the write
+        lock (the fast path of a cache hit; :meth:`claim` is the atomic one)."""
+        with self._lock:
+            cur = self.db.execute("SELECT * FROM jobs WHERE key = ? ORDER BY created DESC", [key])
+            cols = [d[0] for d in cur.description]
+            rows = cur.fetchall()
+        for row in rows:
+            record = _decode(dict(zip(cols, row)))
+            if reuse(record):
+                return record
+        return None
+
     def claim(self, key: str, fields: dict, *, reuse: Callable[[dict], bool]) -> tuple[dict, bool]:
         """Return the newest record for ``key`` that ``reuse`` accepts, or insert ``fields``.
 

@@ -201,15 +201,31 @@ class Canonical:
     tables: tuple[str, ...]      # tables the query reads, as spelled (for provenance)
 
 
-@functools.lru_cache(maxsize=2048)
-def canonical_adql(adql: str) -> Canonical:
-    """Canonical ADQL of ``adql``; never raises on any text (a notebook re-run hits the cache)."""
+@functools.lru_cache(maxsize=4096)
+def canonical_text(adql: str) -> tuple[str, bool]:
+    """(canonical text, parsed) from the tokenizer alone: all the key needs, and cheap.
+
+    ``parsed`` is False when the text is not lexically ADQL; the text is then the exact input.
+    """
     if not isinstance(adql, str):
         raise TypeError(f"ADQL must be a str, not {type(adql).__name__}")
     tokens, problems = _tokenize(adql)
     if problems or not tokens:
+        return adql, False
+    return " ".join(_canonical_words(tokens)), True
+
+
+@functools.lru_cache(maxsize=2048)
+def canonical_adql(adql: str) -> Canonical:
+    """Canonical ADQL of ``adql``; never raises on any text (a notebook re-run hits the cache).
+
+    Adds what a real parser tells about the query (tables read, reasons it is not
+    repeatable) to :func:`canonical_text`; that parse costs far more than the key does.
+    """
+    text, parsed = canonical_text(adql)
+    tokens, _ = _tokenize(adql)
+    if not parsed:
         return Canonical(adql, False, _heuristic_warnings(tokens), _heuristic_tables(tokens))
-    text = " ".join(_canonical_words(tokens))
     read = _read_with_parser(text)
     if read is None:
         return Canonical(text, True, _heuristic_warnings(tokens), _heuristic_tables(tokens))
@@ -389,12 +405,12 @@ def query_key(service: str, adql: str, *, maxrec: int | None, fmt: str,
         if not isinstance(digest, str) or not _SHA256_HEX.fullmatch(digest):
             raise UploadInvalid(f"upload {name!r}: expected the sha256 hex digest of its content")
         digests[name] = digest.lower()
-    canonical = canonical_adql(adql)
+    text, parsed = canonical_text(adql)
     record = {
         "v": KEY_VERSION,
         "service": service_id(service),
-        "adql": canonical.text,
-        "exact": not canonical.parsed,   # a fallback text never equals a canonical one
+        "adql": text,
+        "exact": not parsed,             # a fallback text never equals a canonical one
         "maxrec": maxrec,                # JSON null is distinct from every number
         "format": fmt.strip().lower(),
         "uploads": digests,
