@@ -288,7 +288,7 @@ class LocalTapService:
         self.loop: IOLoop | None = None
         self.counters = {"requests": 0, "refused": 0, "jobs_created": 0, "jobs_destroyed": 0,
                          "sync_queries": 0, "result_downloads": 0, "result_bytes_sent": 0,
-                         "dropped_downloads": 0, "wait_requests": 0}
+                         "dropped_downloads": 0, "wait_requests": 0, "wait_checks": 0}
         self.restart_report = {"stopped": [], "requeued": []}
         self._waiters: dict[str, set[asyncio.Future]] = {}
         self._callbacks: list[PeriodicCallback] = []
@@ -739,6 +739,7 @@ class JobHandler(TapHandler):
                 await asyncio.sleep(min(step, remaining))
             else:
                 await self.tap.wait_for_change(job.id, remaining)
+            self.tap.counters["wait_checks"] += 1   # how often a WAIT looked at the phase
             current = self.tap.store.get(job.id)
             if current is None or current.phase != start_phase:
                 return current if current is not None else job
