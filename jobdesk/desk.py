@@ -21,10 +21,11 @@ import platformdirs
 from jobdesk import keys, phases, provenance, results
 from jobdesk import uploads as upload_tables
 from jobdesk.errors import (
-    CacheCorrupt, JobAborted, JobdeskError, JobFailed, JobLost, QueryRejected, ResultTruncated,
+    CacheCorrupt, GroupCacheWarning, JobAborted, JobdeskError, JobFailed, JobLost, QueryRejected, ResultTruncated,
     ResultUnavailable, ServiceUnreachable, TruncatedResultWarning, NotRepeatableWarning,
     WaitTimeout,
 )
+from jobdesk.groups import GroupCaches
 from jobdesk.index import Index, this_process
 from jobdesk.remote import Remote
 from jobdesk.store import Store, stat_stamp
@@ -74,8 +75,7 @@ class Desk:
         self._remote_options = {"wait_window": wait_window, "attempts": attempts,
                                 "timeout": timeout}
         self._sessions: dict[str, object] = {}
-        if groups:
-            raise NotImplementedError("group caches arrive with the group-cache release")
+        self.groups = GroupCaches(groups, root=self.root)  # lookup order: personal, then these
 
     def __repr__(self) -> str:
         return f"Desk({str(self.root)!r})"
@@ -106,11 +106,13 @@ class Desk:
                 return False
             if record["phase"] == phases.COMPLETED and record.get("parquet_sha256"):
                 fresh = oldest is None or (record.get("finished") or 0) >= oldest
-                return fresh and self.store.has(record["parquet_sha256"])
+                here = (self.store.has(record["parquet_sha256"])
+                        or record.get("layer") in self.groups.names)  # copied on first use
+                return fresh and here
             return True  # still running somewhere: share it
 
         known = None if refresh else self.index.find(key, reuse=reuse)
-        if known is not None:  # the fast path: no parse, no write lock
+        if known is not None and self._copied_here(known):  # the fast path: no parse, no lock
             _warn_not_repeatable(known.get("warnings") or ())
             return Job(self, known["id"], known)
         canonical = keys.canonical_adql(adql)
@@ -131,9 +133,14 @@ class Desk:
             "layer": "personal", "requests": 0,
         }
         record, created = self.index.claim(key, fields, reuse=reuse)
+        if not created and not self._copied_here(record):
+            record, created = self.index.claim(key, fields, reuse=reuse)
         job = Job(self, record["id"])
         if created:
-            self._try_start(record)
+            if not publish and self.groups:
+                self.groups.opt_out(record["id"])
+            if refresh or not self._from_groups(record, oldest):
+                self._try_start(record)
         return job
 
     # --- browsing -----------------------------------------------------------------------------
@@ -178,7 +185,93 @@ class Desk:
         entries, size = self.store.usage()
         return {"entries": entries, "bytes": size, "root": str(self.root),
                 "layers": [{"name": "personal", "kind": "personal", "location": str(self.root),
-                            "entries": entries, "bytes": size}]}
+                            "entries": entries, "bytes": size}] + self.groups.summary()}
+
+    def publish(self, job_id: str, *, group: str | None = None) -> str:
+        """Share a finished, complete result with ``group`` (default: the first read-write
+        group cache) now; return where its manifest went. Raises ``PublishRefused``."""
+        record = self.job(job_id).record
+        if not self._copied_here(record):
+            raise CacheCorrupt(f"job {job_id}: its result is not in this cache")
+        name, rel = self.groups.publish(record, self.store, group=group)
+        return f"{name}:{rel}"
+
+    # --- group caches (see jobdesk.groups) ------------------------------------------------------
+
+    def _from_groups(self, record: dict, oldest: float | None) -> bool:
+        """After a personal miss: take the result from the first group cache that has it, or
+        join a colleague's running job announced there. True when no new job is needed."""
+        if not self.groups or not self.index.take_lease(record["id"], self.owner, LEASE_SECONDS):
+            return False
+        try:
+            served = self.groups.serve(record["key"], self.store, oldest=oldest)
+            if served is not None:
+                self._record_served(record["id"], served)
+                return True
+            running = self.groups.running_elsewhere(record["key"])
+            if running is not None and running[1]["service"] == record["service"]:
+                layer, claim = running
+                self.index.update(record["id"], job_url=claim["job_url"],
+                                  phase=phases.SUBMITTED, submitted=time.time(),
+                                  note=f"joined the job {claim['claimant']} runs, announced in "
+                                       f"group cache {layer.name}")
+                return True
+            return False
+        finally:
+            self.index.release(record["id"], self.owner)
+
+    def _record_served(self, job_id: str, served) -> None:
+        m = served.manifest
+        (raw_sha, raw_path), (table_sha, table_path) = (served.copies["votable"],
+                                                        served.copies["parquet"])
+        self.groups.remember(job_id, served)
+        self.index.update(job_id, phase=phases.COMPLETED, layer=served.layer.name,
+                          job_url=m.get("job_url"), rows=m["rows"], truncated=0,
+                          result_sha256=raw_sha, result_bytes=m["objects"]["votable"]["bytes"],
+                          result_stat=stat_stamp(raw_path), parquet_sha256=table_sha,
+                          parquet_stat=stat_stamp(table_path), server=m.get("server") or {},
+                          submitted=m.get("submitted"),
+                          finished=m.get("finished") or m["published_unix"], note=served.account)
+
+    def _copied_here(self, record: dict) -> bool:
+        """Whether a finished record's files are in the personal store; a record listed from a
+        group cache (``jobdesk group rebuild-index``) gets them now, verified, or is marked LOST."""
+        if (record["phase"] != phases.COMPLETED or not record.get("parquet_sha256")
+                or record.get("layer") in (None, "personal")
+                or self.store.has(record["parquet_sha256"])):
+            return True
+        try:
+            served = self.groups.layer(record["layer"]).serve(record["key"], self.store)
+        except KeyError:
+            served = None
+        if served is not None:
+            self._record_served(record["id"], served)
+            return True
+        self.index.update(record["id"], phase=phases.LOST, parquet_sha256=None,
+                          error=f"group cache {record['layer']} no longer has a good copy",
+                          note="group copy unusable")
+        return False
+
+    def _publish_quietly(self, job_id: str) -> None:
+        """Publish a fresh complete result unless opted out; a failure only warns."""
+        if not any(not layer.readonly for layer in self.groups.layers) \
+                or self.groups.opted_out(job_id):
+            return
+        record = self.index.get(job_id)
+        if record.get("scope") == "authenticated":
+            return  # results seen with credentials stay personal unless scope= names a group
+        try:
+            self.groups.publish(record, self.store)
+        except (JobdeskError, OSError) as exc:
+            warnings.warn(GroupCacheWarning(f"job {job_id}: the result stays personal, "
+                                            f"publishing failed: {exc}"), stacklevel=4)
+
+    def _announce(self, job_id: str) -> None:
+        """Keep this job's claim in the group cache fresh while it runs; drop it after."""
+        if self.groups:
+            record = self.index.get(job_id)
+            if record is not None:
+                self.groups.heartbeat(record, running=record["phase"] in phases.ACTIVE)
 
     def step(self, *, owner: str | None = None, service: str | None = None) -> int:
         """Advance every job no live process is driving, once, without blocking; return count.
@@ -246,6 +339,7 @@ class Desk:
                 self.index.update(job_id, job_url=job_url, phase=phases.SUBMITTED,
                                   submitted=time.time(), note="created on the service")
                 remote.run(job_url)
+                self._announce(job_id)
             else:
                 self.index.update(job_id, job_url=job_url, phase=phases.SUBMITTED,
                                   submitted=time.time(), note="re-attached after a crash")
@@ -307,6 +401,7 @@ class Desk:
                               note="the service no longer knows the job")
         finally:
             self.index.update(job_id, requests_add=remote.requests)
+            self._announce(job_id)
         return self.index.get(job_id)
 
     def _fetch(self, record: dict, status, remote: Remote) -> None:
@@ -340,6 +435,8 @@ class Desk:
                           result_bytes=got.bytes, result_stat=stat_stamp(raw_path),
                           parquet_sha256=table_sha, parquet_stat=stat_stamp(table_path),
                           server=server, note="result saved")
+        if not truncated:
+            self._publish_quietly(job_id)
         if truncated:
             warnings.warn(TruncatedResultWarning(
                 f"job {job_id}: the result was cut at {summary.rows} rows "
@@ -482,6 +579,9 @@ class Job:
                 f"job {self.id}: the result was cut at {r['rows']} rows "
                 f"(MAXREC={r.get('maxrec')} or a service limit); it is not the full answer",
                 rows=r.get("rows"), service=r["service"])
+        if not self.desk._copied_here(r):  # listed from a group cache, not fetched yet
+            raise CacheCorrupt(f"job {self.id}: {self.record.get('error')}")
+        r = self.record
         try:
             return self.desk.store.checked(r["parquet_sha256"], r.get("parquet_stat"))
         except CacheCorrupt:
@@ -506,6 +606,10 @@ class Job:
             columns = results.columns(self.desk.store.path(r["parquet_sha256"]))
         prov = provenance.build(r, self.desk.index.history(self.id), columns=columns)
         prov["tables"] = list(keys.canonical_adql(r["adql"]).tables)
+        prov["lookup_order"] = ["personal", *self.desk.groups.names]
+        if r.get("layer") not in (None, "personal"):
+            prov["group"] = self.desk.groups.served_note(self.id)
+            prov["served"] = (prov["group"] or {}).get("account") or f"group cache {r['layer']}"
         return prov
 
     def account(self) -> str:
