@@ -7,6 +7,7 @@
 """
 
 from jobdesk.desk import Desk, Job
+from jobdesk.groups import Group
 from jobdesk.errors import (
     BadServiceURL, CacheCorrupt, JobAborted, JobdeskError, JobFailed, JobLost,
     NotRepeatableWarning, QueryRejected, ResultTruncated, ResultUnavailable, ServiceError,
@@ -17,7 +18,7 @@ from jobdesk.errors import (
 __version__ = "0.1.0"
 
 __all__ = [
-    "BadServiceURL", "CacheCorrupt", "Desk", "Job", "JobAborted", "JobdeskError", "JobFailed",
+    "BadServiceURL", "CacheCorrupt", "Desk", "Group", "Job", "JobAborted", "JobdeskError", "JobFailed",
     "JobLost", "NotRepeatableWarning", "QueryRejected", "ResultTruncated", "ResultUnavailable",
     "ServiceError", "ServiceRefused", "ServiceResponseInvalid", "ServiceUnreachable",
     "StorageFull", "TruncatedResultWarning", "UploadInvalid", "WaitTimeout", "__version__",
