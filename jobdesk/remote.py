@@ -21,7 +21,7 @@ import re
 import time
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass, field
-from datetime import UTC, datetime
+from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
 from urllib.parse import urljoin, urlsplit, urlunsplit
@@ -52,6 +52,9 @@ UWS_NS = "http://www.ivoa.net/xml/UWS/v1.0"  # UWS 1.0 and 1.1 share this namesp
 XLINK_HREF = "{http://www.w3.org/1999/xlink}href"
 CHUNK = 1 << 20  # 1 MiB: download buffer, so memory does not grow with the result
 FIRST_POLL = 0.2  # seconds before the first poll when WAIT is not available
+MESSAGE_LIMIT = 4000  # characters of a service's error message kept (common practice, no source)
+FIND_LIMIT = 50  # job-list entries considered, and job documents read, by find()
+CAPABILITIES_LIMIT = 4 << 20  # bytes of a VOSI capabilities document read at most
 # UWS 1.1 §2.2.1.2: WAIT blocks only while the job is in one of these phases.
 WAITABLE = frozenset({phases.PENDING, phases.QUEUED, phases.EXECUTING})
 # Terminal for a client (UWS 1.1 §2.1.3).
@@ -123,6 +126,7 @@ class Remote:
         self.wait_window = max(1, int(wait_window))
         self.max_backoff = max(0.0, float(max_backoff))
         self.requests = 0
+        self._capabilities: dict[str, Any] | None = None
 
     # --- the UWS verbs -------------------------------------------------------------------------
 
@@ -149,8 +153,27 @@ class Remote:
             form.append(("UPLOAD", f"{name},param:{name}"))
             files.append((name, (f"{name}.xml", bytes(content), "application/x-votable+xml")))
         url = f"{self.base_url}/async"
-        response = self._request("POST", url, data=form, files=files or None, allow_redirects=False,
-                                 what="creating the job")
+        since = (datetime.now(UTC) - timedelta(seconds=120)).isoformat(timespec="seconds")
+        tries = 0
+
+        def attempt() -> requests.Response | str:
+            nonlocal tries
+            tries += 1
+            if tries > 1 and run_id is not None:
+                # The lost answer may have left after the service made the job (a reset or a
+                # timeout once the POST had arrived): find it by RUNID before making another.
+                found = self.find(run_id=run_id, after=since)
+                if found:
+                    log.debug("creating the job: found %s made by the lost attempt", found[0])
+                    return found[0]
+            response = self._once("POST", url, data=form, files=files or None,
+                                  allow_redirects=False)
+            self._check(response, what="creating the job", lost_on_404=False)
+            return response
+
+        response = self._retry_call(self._retrying(), attempt, method="POST", url=url)
+        if isinstance(response, str):
+            return response
         location = response.headers.get("Location")
         if response.status_code in (301, 302, 303, 307, 201) and location:
             return urljoin(response.url or url, location)
@@ -277,30 +300,43 @@ class Remote:
                                      what="deleting the job")
 
     def error_detail(self, job_url: str) -> str:
-        """The service's own words on why the job failed (``{job}/error``, UWS 1.1 §2.2.1)."""
-        response = self._request("GET", f"{job_url}/error", accept=(404,), what="reading the error")
-        if response.status_code == 404:
-            summary = self.status(job_url).error_summary  # no detail document: the summary is all
-            return summary or ""
-        return _document_message(response.content)
+        """The service's own words on why the job failed (``{job}/error``, UWS 1.1 §2.2.1).
 
-    def find(self, *, run_id: str, after: str, adql: str | None = None) -> list[str]:
+        The detail is read whatever ``errorSummary/@hasDetail`` says: servers are seen to say
+        "false" and serve the document all the same.  Without a detail (404, or an empty body)
+        the summary's message is all there is.
+        """
+        response = self._request("GET", f"{job_url}/error", accept=(404, 410),
+                                 what="reading the error")
+        detail = "" if response.status_code in (404, 410) else _document_message(response.content)
+        if detail:
+            return detail
+        return self.status(job_url).error_summary or ""
+
+    def find(self, *, run_id: str | None, after: str, adql: str | None = None,
+             limit: int = FIND_LIMIT) -> list[str]:
         """Job URLs created at or after ``after`` whose RUNID is ``run_id``; newest first.
 
         For re-attaching to a job whose URL was never recorded (the process died between the
-        POST and writing it down).  Some services drop RUNID, so with ``adql`` a job whose QUERY
-        parameter is exactly that text also matches.  UWS 1.1 §2.2.2.1: ``AFTER`` filters the
-        list on the service; entries are checked again here, as a UWS 1.0 service ignores it.
+        POST and writing it down).  Servers may drop RUNID and list jobs with nothing but their
+        phase, so with ``adql`` a job whose QUERY parameter is exactly that text also matches
+        (parameter names compared without case, TAP 1.1 §2.3; the value exactly, whitespace
+        included).  The work is bounded: the list is asked for ``AFTER=`` and ``LAST=limit``
+        (UWS 1.1 §2.2.2.1), at most ``limit`` entries are considered, newest first, and at most
+        ``limit`` job documents are read.  ``creationTime``, where given, must be >= ``after``.
         """
-        listing = self._request("GET", f"{self.base_url}/async", params={"AFTER": after},
-                                what="listing jobs")
+        limit = max(1, int(limit))
+        listing = self._request("GET", f"{self.base_url}/async",
+                                params={"AFTER": after, "LAST": str(limit)}, what="listing jobs")
         root = _parse_xml(listing.content, self.service, "job list")
         if _local(root.tag) != "jobs":
             raise ServiceResponseInvalid(f"expected a UWS job list, got <{_local(root.tag)}>: "
                                          f"{_snippet(listing.content)}", service=self.service)
         since = _when(after)
+        wanted_query = _newlines(adql) if adql is not None else None
         found: dict[str, datetime | None] = {}
-        for ref in _children(root, "jobref"):
+        reads = 0
+        for ref in _newest_first(_children(root, "jobref"), limit):
             href = _href(ref)
             url = urljoin(listing.url or self.base_url + "/async/",
                           href) if href else f"{self.base_url}/async/{ref.get('id')}"
@@ -308,11 +344,13 @@ class Remote:
             created = _when(_child_text(ref, "creationTime"))
             if created is not None and since is not None and created < since:
                 continue
-            if listed_run is not None and listed_run == run_id:
-                found[url] = created
-                continue
-            if listed_run is not None and adql is None:
-                continue
+            if listed_run is not None:
+                if run_id is not None and listed_run == run_id:
+                    found[url] = created
+                continue  # the service keeps RUNIDs and this one is not ours
+            if reads >= limit:
+                break
+            reads += 1
             try:
                 job = self.status(url)
             except JobLost:
@@ -320,10 +358,54 @@ class Remote:
             created = _when(job.creation_time) or created
             if since is not None and created is not None and created < since:
                 continue
-            if job.run_id == run_id or (adql is not None and job.parameters.get("QUERY") == adql):
+            same_run = run_id is not None and job.run_id == run_id
+            same_query = (wanted_query is not None and "QUERY" in job.parameters
+                          and _newlines(job.parameters["QUERY"]) == wanted_query)
+            if same_run or same_query:
                 found[url] = created
         epoch = datetime.min.replace(tzinfo=UTC)
-        return sorted(found, key=lambda u: found[u] or epoch, reverse=True)
+        order = {url: i for i, url in enumerate(found)}  # list order breaks ties (newest first)
+        return sorted(found, key=lambda u: (found[u] or epoch, -order[u]), reverse=True)
+
+    def capabilities(self) -> dict[str, Any]:
+        """What the service says of itself: VOSI ``{base}/capabilities`` plus the HTTP ``Server``.
+
+        Read once per :class:`Remote` (the answer is kept), for provenance.  Keys:
+        ``capabilities_url``, ``standard_id``, ``interface_version``, ``adql_versions``,
+        ``output_limit`` / ``retention`` / ``execution_duration`` (each ``{"default", "hard"}``,
+        plus ``unit`` for the output limit), ``upload_methods``, ``software`` (the ``Server``
+        header, as many services name themselves nowhere else).  Never raises for the
+        service's sake: on any failure the keys read so far come back with ``error`` set.
+        """
+        if self._capabilities is not None:
+            return dict(self._capabilities)
+        url = f"{self.base_url}/capabilities"  # TAP 1.1 §2: a required VOSI resource
+        info: dict[str, Any] = {"capabilities_url": _public_url(url)}
+        try:
+            response = self._once("GET", url, stream=True, allow_redirects=True)
+            with response:
+                info["software"] = response.headers.get("Server")
+                self._check(response, what="reading the capabilities", lost_on_404=False)
+                body = b""
+                for piece in _body_pieces(response):
+                    body += piece
+                    if len(body) > CAPABILITIES_LIMIT:
+                        raise ServiceResponseInvalid(
+                            f"the capabilities document is larger than {CAPABILITIES_LIMIT} "
+                            "bytes", service=self.service)
+            info.update(_read_capabilities(_parse_xml(body, self.service, "capabilities")))
+        except Exception as exc:  # noqa: BLE001 - provenance must never fail a job
+            if isinstance(exc, _RetryableStatus):
+                message = f"HTTP {exc.status}: {exc.message}"
+            elif isinstance(exc, JobdeskError):
+                message = exc.message
+            elif isinstance(exc, requests.exceptions.RequestException):
+                message = from_transport(exc, service=self.service).message  # no request dump
+            else:
+                message = f"{exc.__class__.__name__}: {exc}"
+            info["error"] = self._scrub(_shorten(message))
+        self._capabilities = info
+        return dict(info)
 
     def download(self, url: str, dest: Path, *,
                  on_progress: Callable[[int], None] | None = None) -> Downloaded:
@@ -546,7 +628,10 @@ def _job_status(url: str, body: bytes, service: str) -> JobStatus:
             parameters[name.upper()] = param.text or ""  # exact: values are case- and space-sensitive
     result_url = None
     results_el = _child(root, "results")
-    if results_el is not None:
+    # Some servers list a "result" for an ABORTED job (empty, or a partial table ending in an
+    # error): it is never offered, nor is one of a failed job (UWS 1.1 §2.1.3: results are the
+    # output of a job that ran to completion).
+    if results_el is not None and phase.strip().upper() not in (phases.ABORTED, phases.ERROR):
         results = [(r.get("id"), _href(r)) for r in _children(results_el, "result")]
         named = [href for rid, href in results if rid == "result" and href]
         anyone = [href for _, href in results if href]
@@ -614,7 +699,84 @@ def _error_votable_message(body: bytes) -> str | None:
     errors = [e for e in status if (e.get("value") or "").upper() == "ERROR"]
     if not errors:
         return None
-    return " ".join((errors[-1].text or "").split()) or "the service reported an error"
+    # The service's words exactly (inner whitespace included): only the ends are trimmed.
+    return (errors[-1].text or "").strip() or "the service reported an error"
+
+
+TAP_STANDARD = "ivo://ivoa.net/std/tap"  # TAPRegExt 1.0 §2; ivo identifiers ignore case
+
+
+def _read_capabilities(root: Element) -> dict[str, Any]:
+    """The TAP capability of a VOSI 1.1 capabilities document (TAPRegExt 1.0 §2)."""
+    if _local(root.tag) != "capabilities":
+        raise ValueError(f"expected <capabilities>, got <{_local(root.tag)}>")
+    taps = [c for c in _children(root, "capability")
+            if (c.get("standardID") or "").strip().lower().split("#")[0] == TAP_STANDARD]
+    if not taps:
+        raise ValueError("the capabilities name no TAP capability (ivo://ivoa.net/std/TAP)")
+    # Prefer the one that describes the service in TAPRegExt terms (it has a <language>).
+    cap = next((c for c in taps if _child(c, "language") is not None), taps[0])
+    interfaces = _children(cap, "interface")
+    std = [i for i in interfaces if i.get("role") == "std"] or interfaces
+    versions = sorted((i.get("version") for i in std if i.get("version")), key=_version_key)
+    adql: list[str] = []
+    for language in _children(cap, "language"):
+        if (_child_text(language, "name") or "").upper() != "ADQL":
+            continue
+        for version in _children(language, "version"):
+            text = (version.text or "").strip() or (version.get("ivo-id") or "").rsplit("#v", 1)[-1]
+            if text and text not in adql:
+                adql.append(text)
+    uploads = [m.get("ivo-id") for m in _children(cap, "uploadMethod") if m.get("ivo-id")]
+    output = _limits(_child(cap, "outputLimit"))
+    return {"standard_id": cap.get("standardID"),
+            "interface_version": versions[-1] if versions else None,
+            "adql_versions": adql,
+            "output_limit": output,
+            "retention": _limits(_child(cap, "retentionPeriod")),
+            "execution_duration": _limits(_child(cap, "executionDuration")),
+            "upload_methods": uploads}
+
+
+def _limits(element: Element | None) -> dict[str, Any] | None:
+    """TAPRegExt 1.0 ``default``/``hard`` limits as integers (``unit`` kept when given)."""
+    if element is None:
+        return None
+    out: dict[str, Any] = {}
+    for name in ("default", "hard"):
+        child = _child(element, name)
+        if child is not None:
+            out[name] = _int((child.text or "").strip())
+            if child.get("unit"):
+                out["unit"] = child.get("unit")
+    return out
+
+
+def _version_key(version: str) -> tuple[int, ...]:
+    return tuple(int(p) if p.isdigit() else 0 for p in version.split("."))
+
+
+def _newest_first(refs: list[Element], limit: int) -> list[Element]:
+    """At most ``limit`` job-list entries, newest first.
+
+    By creationTime when every entry has one; else the server's order: newest first when it
+    honoured ``LAST`` (UWS 1.1 §2.2.2.1), and when it sent more than asked for (LAST ignored, as
+    UWS 1.0 servers do) its list is taken as oldest first (common practice, no source).
+    """
+    times = [_when(_child_text(r, "creationTime")) for r in refs]
+    if refs and all(t is not None for t in times):
+        ordered = [r for _, r in sorted(zip(times, refs), key=lambda p: p[0], reverse=True)]
+    elif len(refs) > limit:
+        ordered = list(reversed(refs))
+    else:
+        ordered = list(refs)
+    return ordered[:limit]
+
+
+def _newlines(text: str) -> str:
+    """XML 1.0 §2.11 turns CR LF and lone CR into LF, so a text read back from a document
+    can differ from what was sent only there; nothing else is changed."""
+    return text.replace("\r\n", "\n").replace("\r", "\n")
 
 
 def _document_message(body: bytes) -> str:
@@ -638,6 +800,9 @@ def _response_message(response: requests.Response) -> str:
         body = response.content[:65536]
     except requests.exceptions.RequestException:
         return "(no readable body)"
+    verbatim = _error_votable_message(body)
+    if verbatim is not None:
+        return _shorten(verbatim, MESSAGE_LIMIT)  # an error document's message stays as written
     message = _document_message(body)
     message = " ".join(re.sub(r"<[^>]{0,200}>", " ", message).split())  # strip stray HTML tags
     return _shorten(message or response.reason or "(empty answer)")
