@@ -35,6 +35,7 @@ from jobdesk.errors import (
     UploadInvalid,
 )
 from jobdesk.localtap import serve
+from jobdesk.localtap.faults import LIKE_DACHS
 from jobdesk.remote import Remote
 
 TABLE = "orrery.sources"   # the invented catalogue localtap generates
@@ -337,7 +338,7 @@ def test_error_detail_carries_the_service_message_verbatim(tap):
     parsed = votable.parse(io.BytesIO(raw.content))
     infos = [i for i in parsed.resources[0].infos if i.name == "QUERY_STATUS"]
     assert infos and infos[-1].value == "ERROR"     # DALI 1.1 §4.4
-    assert detail == " ".join(infos[-1].content.split())
+    assert detail == infos[-1].content.strip()      # the service's words, ends trimmed only
     assert "no_such_column_xq" in detail
 
 
@@ -568,7 +569,10 @@ def test_error_votable_message_reads_the_last_error_info():
     doc = (b'<VOTABLE xmlns="http://www.ivoa.net/xml/VOTable/v1.3"><RESOURCE type="results">'
            b'<INFO name="QUERY_STATUS" value="ERROR">Column  \'zz\'\n not found</INFO>'
            b'</RESOURCE></VOTABLE>')
-    assert remote_mod._error_votable_message(doc) == "Column 'zz' not found"
+    # Verbatim: inner spaces and line breaks are the service's, only the ends are trimmed.
+    assert remote_mod._error_votable_message(doc) == "Column  'zz'\n not found"
+    padded = doc.replace(b">Column", b">\n  Column").replace(b"found<", b"found \n<")
+    assert remote_mod._error_votable_message(padded) == "Column  'zz'\n not found"
     assert remote_mod._error_votable_message(b"plain words") is None
 
 
@@ -585,3 +589,212 @@ def test_a_downloaded_error_document_raises(tmp_path, tap):
 def test_public_url_drops_credentials():
     assert remote_mod._public_url("https://me:pw@h.example:8443/tap?key=abc") == \
         "https://h.example:8443/tap"
+
+
+# --- servers that behave differently but legally (localtap's imitation settings) ---------------
+# The behaviours were measured on DaCHS 2.7 (docs/interop.md); localtap imitates each on demand.
+
+
+def test_whole_job_life_against_the_imitation_profile(tmp_path):
+    with serve(rows=500, **LIKE_DACHS) as dachs_like:
+        remote = make_remote(dachs_like)
+        job, final = run_to_end(remote, QUERY, maxrec=50, run_id="profile-1")
+        assert final.phase == "COMPLETED"
+        assert final.run_id is None                 # RUNID dropped by the service
+        got = remote.download(final.result_url, tmp_path / "p.vot")
+        assert len(Table.read(got.path, format="votable")) == 50
+
+
+def test_run_is_never_sent_twice_where_a_second_run_breaks_the_job(tap):
+    """As above, the first RUN's answer is lost; here a second RUN would send the job to ERROR."""
+
+    class LoseFirstRunAnswer(HTTPAdapter):
+        runs_sent = 0
+
+        def send(self, request, **kw):
+            response = super().send(request, **kw)
+            if request.method == "POST" and request.url.endswith("/phase"):
+                type(self).runs_sent += 1
+                if self.runs_sent == 1:
+                    response.close()
+                    raise requests.exceptions.ConnectionError("answer lost on the way back")
+            return response
+
+    tap.configure(exec_delay=1.0, second_run_errors=True, ignore_run_at_creation=True)
+    session = requests.Session()
+    session.mount("http://", LoseFirstRunAnswer())
+    remote = make_remote(tap, session)
+    job = remote.create(QUERY)
+    remote.run(job)
+    assert LoseFirstRunAnswer.runs_sent == 1
+    assert remote.wait(job, deadline=_deadline(30)).phase == "COMPLETED"
+
+
+def test_find_an_orphan_without_runid_or_listed_details(tap):
+    tap.configure(ignore_runid=True, sparse_job_list=True)
+    session = requests.Session()
+    seen = Recorder(session)
+    remote = make_remote(tap, session)
+    before = _iso(datetime.now(UTC) - timedelta(seconds=2))
+    adql = f"SELECT TOP 3 *  FROM {TABLE} -- orphan  probe 77"   # double spaces are part of it
+    job = remote.create(adql, run_id="orphan-77")
+    remote.create(" ".join(adql.split()), run_id="orphan-77")   # same words, other spacing
+    remote.create(adql.upper(), run_id="orphan-77")             # values are case-sensitive
+    # The service lists parameter names in lower case; they match without case (TAP 1.1 §2.3).
+    assert b'id="query"' in requests.get(job, timeout=10).content
+    found = remote.find(run_id="orphan-77", after=before, adql=adql)
+    assert found == [job]
+    listings = [q for m, path, q in seen.seen if m == "GET" and path.endswith("/async")]
+    assert listings[-1]["LAST"] == [str(remote_mod.FIND_LIMIT)]   # UWS 1.1 §2.2.2.1
+    assert listings[-1]["AFTER"] == [before]
+
+
+def test_find_reads_a_bounded_number_of_job_documents_newest_first(tap):
+    tap.configure(ignore_runid=True, sparse_job_list=True)
+    session = requests.Session()
+    seen = Recorder(session)
+    remote = make_remote(tap, session)
+    before = _iso(datetime.now(UTC) - timedelta(seconds=2))
+    adql = f"SELECT TOP 2 * FROM {TABLE} -- bounded probe"
+    wanted = remote.create(adql)
+    others = [remote.create(f"SELECT TOP 1 * FROM {TABLE} -- other {i}") for i in range(6)]
+    reads_before = len(seen.seen)
+    # The wanted job is the oldest of seven: with a bound of 3 it is out of reach ...
+    assert remote.find(run_id=None, after=before, adql=adql, limit=3) == []
+    job_reads = [p for m, p, _ in seen.seen[reads_before:] if m == "GET" and "/async/" in p]
+    assert len(job_reads) == 3
+    newest = {urlsplit(u).path for u in others[-3:]}
+    assert set(job_reads) == newest                 # LAST=n: the n most recent (UWS 1.1 §2.2.2.1)
+    # ... and within a larger bound it is found.
+    assert remote.find(run_id=None, after=before, adql=adql, limit=10) == [wanted]
+
+
+def test_find_skips_jobs_created_before_after(tap):
+    tap.configure(sparse_job_list=True, ignore_runid=True)
+    remote = make_remote(tap)
+    adql = f"SELECT TOP 2 * FROM {TABLE} -- too old"
+    remote.create(adql)
+    later = _iso(datetime.now(UTC) + timedelta(hours=1))
+    assert remote.find(run_id=None, after=later, adql=adql) == []
+
+
+def test_an_aborted_job_that_lists_a_result_offers_none(tap, tmp_path):
+    tap.configure(exec_delay=30, aborted_lists_result=True)
+    remote = make_remote(tap)
+    job = remote.create(QUERY)
+    remote.run(job)
+    remote.wait(job, deadline=_deadline(1))
+    remote.abort(job)
+    final = remote.wait(job, deadline=_deadline(30))
+    assert final.phase == "ABORTED"
+    listed = requests.get(job + "/results", timeout=10).content
+    assert b'id="result"' in listed                 # the service does list one ...
+    assert final.result_url is None                 # ... which is never offered for download
+
+
+def test_error_detail_is_read_although_has_detail_says_false(tap):
+    tap.configure(has_detail_false=True, error_body_200=True)
+    remote = make_remote(tap)
+    job, final = run_to_end(remote, f'SELECT "odd  name_q" FROM {TABLE}')
+    assert final.phase == "ERROR"
+    assert b'hasDetail="false"' in requests.get(job, timeout=10).content
+    detail = remote.error_detail(job)
+    raw = requests.get(job + "/error", timeout=10)
+    infos = [i for i in votable.parse(io.BytesIO(raw.content)).resources[0].infos
+             if i.name == "QUERY_STATUS"]
+    assert detail == infos[-1].content.strip()      # DALI 1.1 §4.4: the last QUERY_STATUS
+    assert "odd  name_q" in detail                  # two spaces, as the service wrote them
+    pending = remote.create(QUERY)                  # its /error: HTTP 200 and an empty body
+    assert remote.error_detail(pending) == ""
+
+
+def test_a_200_error_body_where_a_result_should_be_is_refused(tap, tmp_path):
+    tap.configure(error_body_200=True)
+    remote = make_remote(tap)
+    job, final = run_to_end(remote, f"SELECT missing_col_r FROM {TABLE}")
+    assert final.phase == "ERROR"
+    with pytest.raises(JobFailed):
+        remote.download(job + "/results/result", tmp_path / "r.vot")
+    assert not (tmp_path / "r.vot").exists()
+
+
+@pytest.mark.parametrize("errors_200", [False, True])
+def test_sync_error_messages_reach_the_caller_verbatim(tap, tmp_path, errors_200):
+    tap.configure(sync_errors_200=errors_200)
+    remote = make_remote(tap)
+    url = f'{tap.url}/sync?LANG=ADQL&QUERY=SELECT+"two  spaces_q"+FROM+{TABLE}'
+    expected = JobFailed if errors_200 else ServiceRefused   # 200 + error VOTable, or HTTP 400
+    with pytest.raises(expected) as caught:
+        remote.download(url, tmp_path / "s.vot")
+    assert "'two  spaces_q'" in str(caught.value)
+
+
+def test_capabilities_agree_with_the_vosi_document(tmp_path):
+    with serve(rows=500, max_rec=1234, destruction=7200, execution_duration=90) as service:
+        session = requests.Session()
+        seen = Recorder(session)
+        remote = make_remote(service, session)
+        caps = remote.capabilities()
+        answer = requests.get(f"{service.url}/capabilities", timeout=10)
+    assert "error" not in caps
+    # Read the same document independently (lxml, namespaces spelled out).
+    from lxml import etree
+    doc = etree.fromstring(answer.content)
+    ns = {"xsi": "http://www.w3.org/2001/XMLSchema-instance"}
+    tap_cap = doc.xpath("capability[@standardID='ivo://ivoa.net/std/TAP']")  # TAPRegExt 1.0 §2
+    assert len(tap_cap) == 1
+    cap = tap_cap[0]
+    assert caps["standard_id"] == "ivo://ivoa.net/std/TAP"
+    # VOSI 1.1 §3.2 / VOResource 1.1: the interface's version attribute; TAPRegExt 1.0 §2.3.
+    assert caps["interface_version"] == cap.xpath("interface[@role='std']/@version")[0] == "1.1"
+    assert caps["adql_versions"] == [v.strip() for v in
+                                     cap.xpath("language[name='ADQL']/version/text()")]
+    assert caps["output_limit"] == {"default": 1234, "hard": 1234, "unit": "row"}
+    assert int(cap.findtext("outputLimit/default")) == caps["output_limit"]["default"]
+    assert caps["retention"]["default"] == int(cap.findtext("retentionPeriod/default")) == 7200
+    assert caps["execution_duration"]["default"] == 90
+    assert caps["upload_methods"] == cap.xpath("uploadMethod/@ivo-id")
+    assert caps["software"] == answer.headers["Server"]   # RFC 9110 §10.2.4
+    assert caps["software"].startswith("jobdesk-localtap ")
+    assert doc.xpath("//@xsi:type", namespaces=ns)        # a real VOSI document, not a stub
+    # Read once: the second call costs no request.
+    requests_made = remote.requests
+    assert remote.capabilities() == caps and remote.requests == requests_made
+    assert seen.count("GET", "/capabilities") == 1
+
+
+def test_capabilities_never_raise():
+    down = Remote(f"http://127.0.0.1:{_free_port()}/tap", attempts=1, timeout=2.0)
+    caps = down.capabilities()
+    assert "error" in caps and caps["capabilities_url"].endswith("/tap/capabilities")
+
+
+def test_capabilities_refuse_entity_expansion_and_keep_the_server_name():
+    bomb = (b'<?xml version="1.0"?><!DOCTYPE c [<!ENTITY a "aaaaaaaaaa">'
+            b'<!ENTITY b "&a;&a;&a;&a;&a;&a;&a;&a;">]>'
+            b'<capabilities><capability standardID="&b;"/></capabilities>')
+
+    class Bomb(BaseHTTPRequestHandler):
+        def do_GET(self):
+            self.send_response(200)
+            self.send_header("Content-Type", "text/xml")
+            self.send_header("Content-Length", str(len(bomb)))
+            self.end_headers()
+            self.wfile.write(bomb)
+
+        def version_string(self):
+            return "bomb-server 9"
+
+        def log_message(self, *args):
+            pass
+
+    # A hostile document needs a server of its own: localtap never sends one.
+    server = ThreadingHTTPServer(("127.0.0.1", 0), Bomb)
+    threading.Thread(target=server.serve_forever, daemon=True).start()
+    try:
+        caps = Remote(f"http://127.0.0.1:{server.server_address[1]}/tap").capabilities()
+    finally:
+        server.shutdown()
+        server.server_close()
+    assert "error" in caps and "standard_id" not in caps
+    assert caps["software"] == "bomb-server 9"
