@@ -22,7 +22,7 @@ from jobdesk import keys, phases, provenance, results
 from jobdesk import uploads as upload_tables
 from jobdesk.errors import (
     CacheCorrupt, GroupCacheWarning, JobAborted, JobdeskError, JobFailed, JobLost, QueryRejected, ResultTruncated,
-    ResultUnavailable, ServiceUnreachable, TruncatedResultWarning, NotRepeatableWarning,
+    ResultUnavailable, ServiceRefused, ServiceUnreachable, TruncatedResultWarning, NotRepeatableWarning,
     WaitTimeout,
 )
 from jobdesk.groups import GroupCaches
@@ -346,8 +346,14 @@ class Desk:
                 if remote.status(job_url).phase == phases.PENDING:
                     remote.run(job_url)
         except JobdeskError as exc:
-            self.index.update(job_id, phase=phases.ERROR, error=str(exc), finished=time.time(),
-                              note="could not create the job")
+            if _transient(exc):
+                # The service may hold the job (only its answer was lost) or be down a while:
+                # the record stays as it is, so the next wait, submit or poller pass finds the
+                # job by its RUNID (or starts it) instead of making a second one.
+                self.index.update(job_id, error=str(exc), note="service unreachable; kept")
+            else:
+                self.index.update(job_id, phase=phases.ERROR, error=str(exc),
+                                  finished=time.time(), note="could not create the job")
             raise
         finally:
             self.index.update(job_id, requests_add=remote.requests)
@@ -366,7 +372,13 @@ class Desk:
         job_id = record["id"]
         remote = self._remote(record["service"])
 
+        ran = False
+
         def seen(status) -> None:
+            nonlocal ran
+            if status.phase == phases.PENDING and not ran:
+                ran = True  # created, but its RUN was lost or never sent (a crash in between)
+                remote.run(record["job_url"])
             fields = {"phase": status.phase}
             if status.phase == phases.EXECUTING and not record.get("started"):
                 fields["started"] = record["started"] = time.time()
@@ -652,6 +664,13 @@ def _progress(title: str, job_id: str | None = None):
 
 def _sleep_until(end: float, step: float) -> None:
     time.sleep(max(0.0, min(step, end - time.monotonic())))
+
+
+def _transient(exc: JobdeskError) -> bool:
+    """Whether a failure may pass by itself: no answer at all, or HTTP 429 / 5xx."""
+    status = getattr(exc, "status", None)
+    return isinstance(exc, ServiceUnreachable) or (
+        isinstance(exc, ServiceRefused) and status is not None and (status == 429 or status >= 500))
 
 
 def _looks_like_query_error(message: str) -> bool:
