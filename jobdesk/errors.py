@@ -183,6 +183,8 @@ def from_transport(exc: BaseException, *, service: str | None = None) -> Jobdesk
                               status=r.status_code, service=service)
     if isinstance(exc, OSError) and exc.errno in (errno.ENOSPC, errno.EDQUOT):
         return StorageFull(f"no space left writing the cache: {exc}")
+    if isinstance(exc, sqlite3.OperationalError) and "disk is full" in str(exc):
+        return StorageFull(f"no space left writing the jobdesk index: {exc}")
     if isinstance(exc, sqlite3.OperationalError) and "locked" in str(exc):
         return IndexBusy(f"the jobdesk index is locked: {exc}")
     return JobdeskError(f"{exc.__class__.__name__}: {exc}", service=service)

@@ -30,7 +30,7 @@ import sqlite_utils
 from tenacity import retry, retry_if_exception, stop_after_attempt, wait_random_exponential
 
 from jobdesk import phases
-from jobdesk.errors import IndexBusy
+from jobdesk.errors import IndexBusy, from_transport
 
 JOB_COLUMNS: dict[str, type] = {
     "id": str, "key": str, "service": str, "adql": str, "canonical": str, "maxrec": int,
@@ -127,11 +127,13 @@ class Index:
                 raise IndexBusy(f"the jobdesk index at {self.path} stayed locked: {exc}") from exc
             try:
                 yield conn
-            except BaseException:
-                conn.execute("ROLLBACK")
-                raise
-            else:
                 conn.execute("COMMIT")
+            except BaseException as exc:
+                if conn.in_transaction:  # SQLite may have rolled back already (disk full)
+                    conn.execute("ROLLBACK")
+                if isinstance(exc, sqlite3.OperationalError) and not _locked(exc):
+                    raise from_transport(exc) from exc  # e.g. a full disk: StorageFull
+                raise
 
     def _migrate(self) -> None:
         with self._write() as conn:
