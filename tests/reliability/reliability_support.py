@@ -115,7 +115,9 @@ class Rule:
     ``reset_after`` (forward, then reset instead of answering: the service acted, the client
     does not know), ``cut`` (forward, send the headers and ``after`` body bytes, reset),
     ``hold`` (forward, then signal ``reached`` and keep the answer until ``release`` is set;
-    a released hold answers normally), ``delay`` (sleep ``seconds``, then forward).
+    a released hold answers normally), ``hold_before`` (signal and wait without forwarding,
+    then reset), ``hold_mid`` (forward, send ``after`` body bytes, signal, wait, reset),
+    ``delay`` (sleep ``seconds``, then forward).
     """
 
     method: str
@@ -216,6 +218,11 @@ class FaultProxy:
         if action == "reset_before":
             _reset(h)
             return
+        if action == "hold_before":  # the service never sees this request
+            rule.reached.set()
+            rule.release.wait(120)
+            _reset(h)
+            return
         if action == "delay":
             time.sleep(rule.seconds)
         status, reason, headers, payload = self._forward(h, body)
@@ -232,10 +239,13 @@ class FaultProxy:
         h.send_header("Content-Length", str(len(payload)))
         h.send_header("Connection", "close")
         h.end_headers()
-        if action == "cut":
+        if action in ("cut", "hold_mid"):
             with contextlib.suppress(OSError):
                 h.wfile.write(payload[: rule.after])
                 h.wfile.flush()
+            if action == "hold_mid":
+                rule.reached.set()
+                rule.release.wait(120)
             _reset(h)
             return
         if h.command != "HEAD":
