@@ -48,7 +48,7 @@ def run(ctx: Context) -> CaseResult:
     tap = ctx.big_tap()
     rows = ctx.catalogue_rows
     root = ctx.work / "case1-desk"
-    hits_n, refetch_n = (5, 2) if ctx.quick else (7, 2)
+    hits_n, refetch_n = (3, 2) if ctx.quick else (7, 2)
 
     # The first run: the job runs on the service, jobdesk streams it and makes its Parquet copy.
     desk = Desk(root)
