@@ -416,6 +416,20 @@ class Desk:
             self._announce(job_id)
         return self.index.get(job_id)
 
+    def _capabilities(self, service: str) -> dict:
+        """The service's VOSI capabilities, read once per service and kept in the index.
+
+        Read through its own Remote so the request is not charged to the job; a failure is
+        recorded in the answer and read again next time, never failing the job.
+        """
+        known = self.index.service_info(service)
+        if known is not None:
+            return known
+        info = self._remote(service).capabilities()
+        if "error" not in info:
+            self.index.set_service_info(service, info)
+        return info
+
     def _fetch(self, record: dict, status, remote: Remote) -> None:
         """Stream the result to disk, make the Parquet copy, register both atomically."""
         job_id = record["id"]
@@ -442,6 +456,7 @@ class Desk:
         truncated = summary.status == "OVERFLOW"
         server = {k: v for k, v in summary.infos.items()
                   if k in ("server_software", "publisher", "request_date", "citation")}
+        server["capabilities"] = self._capabilities(record["service"])
         self.index.update(job_id, phase=phases.COMPLETED, finished=time.time(),
                           rows=summary.rows, truncated=int(truncated), result_sha256=raw_sha,
                           result_bytes=got.bytes, result_stat=stat_stamp(raw_path),

@@ -64,6 +64,13 @@ def _v0_to_v1(db: sqlite_utils.Database) -> None:
     db.execute("CREATE INDEX idx_phases_job ON phases (job_id, at)")
 
 
+@_migration
+def _v1_to_v2(db: sqlite_utils.Database) -> None:
+    # What each service says about itself (VOSI capabilities), read once, cited in provenance.
+    db.execute(db.create_table_sql("services", {"service": str, "info": str, "read_at": float},
+                                   pk="service"))
+
+
 SCHEMA_VERSION = len(MIGRATIONS)
 BUSY_TIMEOUT_MS = 30_000
 
@@ -302,6 +309,18 @@ class Index:
             conn.execute("DELETE FROM phases WHERE job_id = ?", [job_id])
             gone = conn.execute("DELETE FROM jobs WHERE id = ?", [job_id]).rowcount
         return bool(gone)
+
+    def service_info(self, service: str) -> dict | None:
+        with self._lock:
+            row = self.db.execute("SELECT info FROM services WHERE service = ?",
+                                  [service]).fetchone()
+        return None if row is None else json.loads(row[0])
+
+    def set_service_info(self, service: str, info: dict) -> None:
+        with self._write() as conn:
+            conn.execute("INSERT OR REPLACE INTO services (service, info, read_at) "
+                         "VALUES (?, ?, ?)", [service, json.dumps(info, sort_keys=True),
+                                              time.time()])
 
     def referenced_objects(self) -> set[str]:
         """Every checksum some record points at (eviction must keep these files)."""

@@ -269,7 +269,9 @@ def test_requests_per_job_are_counted(tmp_path, no_wait):
     with serve(state=tmp_path / "tap", rows=ROWS, exec_delay=2.0, no_wait=no_wait) as tap:
         job = Desk(tmp_path / "d", wait_window=10).submit(tap.url, CONE).wait(progress=False)
         spent = job.record["requests"]
-        assert spent == _requests(tap)
+        # Everything the service saw, but the one VOSI capabilities read per service, which
+        # provenance uses and which is not charged to the job.
+        assert spent == _requests(tap) - 1
         if not no_wait:
             # create + run + a couple of blocking WAITs + result (UWS 1.1 §2.2.1.2)
             assert spent <= 8
@@ -305,6 +307,10 @@ def test_provenance_and_exports(tap, desk, tmp_path):
     assert [h["phase"] for h in prov["phase_history"]][-1] == phases.COMPLETED
     assert {c["name"]: c["unit"] for c in prov["columns"]}["ra"] == "deg"
     assert prov["software"]["astropy"] and prov["software"]["pyvo"]
+    # The service's identity as its VOSI capabilities state it (VOSI 1.1 §3.2, TAPRegExt 1.0).
+    caps = prov["server"]["capabilities"]
+    assert caps["standard_id"].lower().startswith("ivo://ivoa.net/std/tap")
+    assert caps["software"].startswith("jobdesk-localtap")
     assert "orrery.sources" in job.account() and str(job.rows) in job.account()
     out = tmp_path / "cone.fits"
     written = job.export(out)

@@ -223,8 +223,7 @@ def test_provenance_records_the_server_identity_from_vosi_capabilities(tmp_path)
     text = json.dumps(prov)
     # What the VOSI capabilities say of this server: the TAP standard and its interface version
     # (VOSI 1.1 §3.2, TAPRegExt 1.0 §2); DaCHS names no software there (only in HTTP Server).
-    if tap.standardid not in text:
-        pytest.xfail("jobdesk does not read VOSI capabilities into provenance yet "
-                     "(docs/interop.md, 'what the Desk must handle')")
+    assert tap.standardid in text
+    assert prov["server"]["capabilities"]["software"].startswith("DaCHS")
     assert any(i.version == "1.1" for i in tap.interfaces)
     assert '"1.1"' in text
