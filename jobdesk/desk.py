@@ -21,8 +21,9 @@ import platformdirs
 from jobdesk import keys, phases, provenance, results
 from jobdesk import uploads as upload_tables
 from jobdesk.errors import (
-    CacheCorrupt, GroupCacheWarning, JobAborted, JobdeskError, JobFailed, JobLost, QueryRejected, ResultTruncated,
-    ResultUnavailable, ServiceRefused, ServiceUnreachable, TruncatedResultWarning, NotRepeatableWarning,
+    BadServiceURL, CacheCorrupt, GroupCacheWarning, JobAborted, JobdeskError, JobFailed, JobLost, QueryRejected, ResultTruncated,
+    ResultUnavailable, ServiceRefused, ServiceResponseInvalid, ServiceUnreachable,
+    TruncatedResultWarning, NotRepeatableWarning,
     WaitTimeout,
 )
 from jobdesk.groups import GroupCaches
@@ -450,6 +451,12 @@ class Desk:
                 return
             raw_sha, raw_path = self.store.commit(raw, got.sha256)
             table_sha, table_path = self.store.commit(table)
+        except (ServiceResponseInvalid, BadServiceURL, JobFailed) as exc:
+            # Not a result (an error document, broken or hostile bytes, an unusable link):
+            # fetching again would meet the same answer, so the job ends here, saying why.
+            self.index.update(job_id, phase=phases.ERROR, finished=time.time(),
+                              error=exc.message, note="the result was refused")
+            return
         finally:
             raw.unlink(missing_ok=True)
             table.unlink(missing_ok=True)
