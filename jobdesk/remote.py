@@ -620,6 +620,10 @@ def _job_status(url: str, body: bytes, service: str) -> JobStatus:
     if not phase:
         raise ServiceResponseInvalid(f"the job document has no phase: {_snippet(body)}",
                                      service=service)
+    if phase.upper() not in phases.UWS_PHASES:  # UWS 1.1 §2.1.3: a closed list
+        raise ServiceResponseInvalid(f"the job document has the phase {_shorten(phase, 40)!r}, "
+                                     f"which UWS does not define: {_snippet(body)}",
+                                     service=service)
     parameters: dict[str, str] = {}
     params_el = _child(root, "parameters")
     for param in _children(params_el, "parameter") if params_el is not None else ():
