@@ -41,7 +41,11 @@ def to_votable_bytes(name: str, value) -> bytes:
             else:
                 raise UploadInvalid(f"upload {name!r}: a {type(value).__name__} is not a table")
         buf = io.BytesIO()
-        from_table(value).to_xml(buf, tabledata_format="binary2")
+        try:
+            from_table(value).to_xml(buf, tabledata_format="binary2")
+        except Exception as exc:  # astropy's many ways of refusing a column (objects, mixins)
+            raise UploadInvalid(f"upload {name!r} cannot be written as a VOTable: "
+                                f"{exc.__class__.__name__}: {exc}") from exc
         return buf.getvalue()
     try:
         parse(io.BytesIO(data), verify="ignore").get_first_table()
