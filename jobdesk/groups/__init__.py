@@ -11,6 +11,7 @@ publish), ``claims`` (in-flight sharing), ``maintain`` (verify, prune, rebuild),
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import time
@@ -34,7 +35,9 @@ class GroupCaches:
         self.state = self.root / STATE_DIR
         chosen = configured_groups(self.root) if groups is None else as_groups(groups)
         self.layers = open_layers(chosen, local_state=self.state)
-        self.claimant = publisher() + f":{os.getpid()}"
+        # one personal index shares its own jobs already; a claim is for other desks
+        desk = hashlib.sha256(str(self.root.resolve()).encode()).hexdigest()[:8]
+        self.claimant = f"{publisher()}/{desk}"
         self._beats: dict[str, float] = {}
 
     def __bool__(self) -> bool:
@@ -96,7 +99,9 @@ class GroupCaches:
         for layer in self.layers:
             if not layer.readonly:
                 return layer
-        raise PublishRefused("this desk has no read-write group cache",
+        listed = ", ".join(self.names)
+        raise PublishRefused(f"this desk's group caches ({listed}) are all read-only here"
+                             if listed else "this desk has no group cache",
                              hint="list a group as a location string or "
                                   "jobdesk.Group(location, readonly=False)")
 
@@ -134,6 +139,20 @@ class GroupCaches:
                 self._beats.pop(record["id"], None)
         except OSError:
             pass   # a claim is a courtesy; failing to write one must not stop the job
+
+    # --- the personal index as a view -------------------------------------------------------
+
+    def rebuild_index(self, index) -> int:
+        """List every group result (newest manifest per key) in the personal index, so the
+        sidebar shows what the group holds; files are copied, verified, on first use."""
+        from jobdesk.groups.maintain import view_records
+        added = 0
+        for layer in self.layers:
+            for record in view_records(layer):
+                if index.get(record["id"]) is None:
+                    index.insert(record)
+                    added += 1
+        return added
 
     # --- size -------------------------------------------------------------------------------
 
