@@ -84,7 +84,15 @@ class Store:
 
     def checked(self, sha256: str, stamp: str | None) -> Path:
         """The object's path, after making sure it is the file the index recorded."""
-        path = self.path(sha256)
+        try:
+            path = self.path(sha256)
+        except ValueError:
+            raise CacheCorrupt(f"the record names {str(sha256)[:80]!r} as its file, which is not "
+                               "a sha256 checksum") from None
+        if path.is_symlink() or not path.resolve().is_relative_to(self.objects.resolve()):
+            # Objects are only ever written here by rename; a link may lead out of the cache.
+            self.quarantine(sha256)
+            raise CacheCorrupt(f"cached file {sha256[:12]}… is a link out of {self.objects}")
         if not path.is_file():
             raise CacheCorrupt(f"cached file {sha256[:12]}… is missing from {self.objects}")
         if stamp and stat_stamp(path) == stamp:
