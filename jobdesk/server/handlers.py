@@ -34,7 +34,8 @@ import tornado.web
 from jupyter_server.base.handlers import APIHandler
 
 from jobdesk import phases
-from jobdesk.errors import JobdeskError, ResultUnavailable, ServiceError
+from jobdesk.errors import BadServiceURL, JobdeskError, ResultUnavailable, ServiceError
+from jobdesk.keys import service_id
 
 JOB_ID = re.compile(r"^[0-9a-f]{6,64}$")
 KNOWN_PHASES = frozenset(phases.UWS_PHASES) | {phases.LOCAL, phases.SUBMITTED, phases.LOST}
@@ -178,8 +179,14 @@ def _filters(handler: DeskHandler) -> dict:
     unknown = [p for p in wanted if p not in KNOWN_PHASES]
     if unknown:
         raise tornado.web.HTTPError(400, reason=f"unknown phase {unknown[0][:20]}")
+    service = handler.get_argument("service", None) or None
+    if service is not None:
+        try:
+            service_id(service)
+        except BadServiceURL:  # the client's bad filter, not a failing service (502)
+            raise tornado.web.HTTPError(400, reason="service must be an http(s) URL") from None
     return {"phase": wanted or None,
-            "service": handler.get_argument("service", None) or None,
+            "service": service,
             "text": (handler.get_argument("text", None) or "").strip() or None}
 
 
