@@ -117,7 +117,8 @@ class Rule:
     ``hold`` (forward, then signal ``reached`` and keep the answer until ``release`` is set;
     a released hold answers normally), ``hold_before`` (signal and wait without forwarding,
     then reset), ``hold_mid`` (forward, send ``after`` body bytes, signal, wait, reset),
-    ``delay`` (sleep ``seconds``, then forward).
+    ``delay`` (sleep ``seconds``, then forward), ``echo`` (answer ``code`` with the request's
+    headers and body quoted back, as a careless service might).
     """
 
     method: str
@@ -209,6 +210,15 @@ class FaultProxy:
             h.send_response(rule.code)
             if rule.retry_after is not None:
                 h.send_header("Retry-After", rule.retry_after)
+            h.send_header("Content-Type", "text/plain")
+            h.send_header("Content-Length", str(len(text)))
+            h.send_header("Connection", "close")
+            h.end_headers()
+            h.wfile.write(text)
+            return
+        if action == "echo":  # a careless service quoting the request back, headers and all
+            text = "".join(f"{k}: {v}\n" for k, v in h.headers.items()).encode() + body[:2000]
+            h.send_response(rule.code)
             h.send_header("Content-Type", "text/plain")
             h.send_header("Content-Length", str(len(text)))
             h.send_header("Connection", "close")
