@@ -365,15 +365,24 @@ def service_id(url: str) -> str:
         parts = urlsplit(text)
         port = parts.port
     except ValueError as exc:
-        raise BadServiceURL(f"bad service URL {text!r}: {exc}", service=text) from None
+        shown = _without_secrets(text)
+        raise BadServiceURL(f"bad service URL {shown!r}: {exc}", service=shown) from None
     scheme = parts.scheme.lower()
     host = (parts.hostname or "").lower()
     if scheme not in _DEFAULT_PORTS or not host:
-        raise BadServiceURL(f"not an http(s) URL with a host: {text!r}", service=text)
+        shown = _without_secrets(text)
+        raise BadServiceURL(f"not an http(s) URL with a host: {shown!r}", service=shown)
     if ":" in host:                                 # IPv6 literal goes back into brackets
         host = f"[{host}]"
     netloc = host if port in (None, _DEFAULT_PORTS[scheme]) else f"{host}:{port}"
     return f"{scheme}://{netloc}{parts.path.rstrip('/')}"
+
+
+def _without_secrets(text: str) -> str:
+    """A URL as it may be shown in a message: no ``user:password@``, no query or fragment
+    (which may hold a key), even when the URL is too broken for urlsplit."""
+    text = re.sub(r"(?<=//)[^/?#]*@", "", text)  # up to the last @ of the authority
+    return re.split(r"[?#]", text, maxsplit=1)[0]
 
 
 _SHA256_HEX = re.compile(r"[0-9a-fA-F]{64}")
