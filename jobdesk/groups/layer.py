@@ -12,6 +12,7 @@ from __future__ import annotations
 
 import grp
 import hashlib
+import itertools
 import json
 import socket
 import time
@@ -23,6 +24,7 @@ from jobdesk.groups import layout
 from jobdesk.groups.config import Group
 from jobdesk.groups.storage import CHUNK, PosixStorage, open_storage
 
+DEDUP_LOOK = 3     # newest manifests compared before publishing a result again
 USAGE_TTL = 60.0   # seconds a usage count is reused (walking a big bucket is slow)
 
 
@@ -95,12 +97,12 @@ class GroupLayer:
 
     # --- finding and serving ----------------------------------------------------------------
 
-    def manifests(self, key: str) -> list[tuple[str, dict]]:
-        """This key's trustworthy manifests, newest first; bad ones are reported and set aside."""
+    def manifests(self, key: str):
+        """This key's trustworthy manifests, newest first, read lazily (serving stops at the
+        first good one); bad ones met on the way are reported and set aside."""
         folder = layout.manifest_dir(key)
         names = sorted((n for n in self.storage.listdir(folder) if layout.is_manifest_name(n)),
                        reverse=True)
-        found = []
         for name in names:
             rel = f"{folder}/{name}"
             try:
@@ -111,10 +113,11 @@ class GroupLayer:
                 self._report(f"cannot read {self._where(rel)}: {exc}")
                 continue
             try:
-                found.append((rel, layout.parse_manifest(data, key=key)))
+                manifest = layout.parse_manifest(data, key=key)
             except layout.ManifestInvalid as exc:
                 self._set_aside(rel, f"manifest rejected: {exc}")
-        return found
+                continue
+            yield rel, manifest
 
     def serve(self, key: str, store, *, oldest: float | None = None) -> Served | None:
         """Copy the newest good result for ``key`` into ``store`` (verified), or None."""
@@ -179,7 +182,7 @@ class GroupLayer:
         try:
             for sha in (record["result_sha256"], record["parquet_sha256"]):
                 self._put_object(sha, store)
-            for rel, existing in self.manifests(record["key"]):
+            for rel, existing in itertools.islice(self.manifests(record["key"]), DEDUP_LOOK):
                 if existing["objects"]["votable"]["sha256"] == record["result_sha256"]:
                     return rel   # this very result is already published
             now = time.time()

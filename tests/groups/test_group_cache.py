@@ -308,3 +308,11 @@ def test_verify_reports_every_kind_of_damage(tap, tmp_path, place):
     assert any("does not match" in p for p in problems)
     assert any(second in p and "JSON" in p for p in problems)
     assert len(problems) == 2
+
+
+def test_world_writable_policy_is_refused(tmp_path):
+    with pytest.raises(ValueError, match="world-writable"):
+        maintain.init_group(str(tmp_path / "open"), umask=0o000)
+    maintain.init_group(str(tmp_path / "closed"), umask=0o022)
+    policy = json.loads((tmp_path / "closed" / layout.GROUP_FILE).read_text())
+    assert policy["umask"] == "0022" and policy["format"] == layout.FORMAT
