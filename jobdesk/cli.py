@@ -141,6 +141,64 @@ def cmd_cache(args) -> int:
     return 0
 
 
+def _group_layer(args):
+    """The named group of this desk (or its only one), or a location given with --location."""
+    from jobdesk.groups import Group
+    from jobdesk.groups.layer import GroupLayer
+    if args.location:
+        return GroupLayer(Group(args.location, readonly=not getattr(args, "write", False)))
+    layers = _desk(args).groups.layers
+    if args.group:
+        return next(layer for layer in layers if layer.name == args.group)
+    if len(layers) != 1:
+        raise KeyError("name the group cache: --group NAME (or --location PATH_OR_URL); "
+                       f"this desk has {[layer.name for layer in layers]}")
+    return layers[0]
+
+
+def _report(report, args, verb: str) -> int:
+    if args.json:
+        print(json.dumps(report.as_dict(), indent=1))
+    else:
+        print(f"{report.manifests} manifests, {report.objects} objects, {_size(report.bytes)}")
+        for line in report.problems:
+            print(f"problem: {line}")
+        for rel in report.removed:
+            print(f"{verb}: {rel}")
+        if report.removed:
+            print(f"{len(report.removed)} files, {_size(report.freed)} {verb}")
+    return 1 if report.problems else 0
+
+
+def cmd_group_rebuild(args) -> int:
+    desk = _desk(args)
+    added = desk.groups.rebuild_index(desk.index)
+    print(f"{added} group results newly listed in {desk.root}")
+    return 0
+
+
+def cmd_group_verify(args) -> int:
+    from jobdesk.groups.maintain import verify
+    return _report(verify(_group_layer(args), hashes=not args.quick), args, "checked")
+
+
+def cmd_group_prune(args) -> int:
+    from jobdesk.groups.maintain import prune
+    args.write = not args.dry_run
+    days = None if args.older_than_days is None else args.older_than_days * 86400
+    report = prune(_group_layer(args), older_than=days, dry_run=args.dry_run)
+    _report(report, args, "would remove" if args.dry_run else "removed")
+    return 0
+
+
+def cmd_group_init(args) -> int:
+    from jobdesk.groups.maintain import init_group
+    policy = init_group(args.location, name=args.name, umask=int(args.umask, 8),
+                        unix_group=args.unix_group)
+    print(json.dumps(policy, indent=1))
+    return 0
+
+
 def cmd_demo(args) -> int:
     from jobdesk.demo import run
     return run(root=args.root, rows=args.rows)
@@ -200,6 +258,30 @@ def parser() -> argparse.ArgumentParser:
     s = sub.add_parser("cache", help="what the cache holds")
     s.add_argument("--json", action="store_true")
     s.set_defaults(func=cmd_cache)
+
+    g = sub.add_parser("group", help="group caches: set up, verify, prune, list in the index")
+    gsub = g.add_subparsers(dest="group_command", required=True)
+    s = gsub.add_parser("rebuild-index", help="list every group result in the local index")
+    s.set_defaults(func=cmd_group_rebuild)
+    for name, func, text in (("verify", cmd_group_verify, "check manifests, checksums, modes"),
+                             ("prune", cmd_group_prune, "remove what no manifest references")):
+        s = gsub.add_parser(name, help=text)
+        s.add_argument("--group", help="the group's name in this desk's configuration")
+        s.add_argument("--location", help="or the group's path or fsspec URL")
+        s.add_argument("--json", action="store_true")
+        s.set_defaults(func=func)
+        if name == "verify":
+            s.add_argument("--quick", action="store_true", help="sizes only, no sha256")
+        else:
+            s.add_argument("--dry-run", action="store_true", help="only say what would go")
+            s.add_argument("--older-than-days", type=float,
+                           help="also remove manifests published longer ago than this")
+    s = gsub.add_parser("init", help="create a group cache (layout, group.json, modes)")
+    s.add_argument("location")
+    s.add_argument("--name")
+    s.add_argument("--umask", default="0002", help="group policy umask (0002 or 0022)")
+    s.add_argument("--unix-group", help="group that owns the files (default: the directory's)")
+    s.set_defaults(func=cmd_group_init)
 
     s = sub.add_parser("demo", help="the whole story, offline, on the embedded TAP service")
     s.add_argument("--rows", type=int, default=20000, help="size of the demo catalogue")
