@@ -7,6 +7,7 @@ in server mode on loopback). Real HTTP to the embedded TAP service, real SQLite,
 from __future__ import annotations
 
 import json
+import os
 import time
 import warnings
 
@@ -316,3 +317,30 @@ def test_world_writable_policy_is_refused(tmp_path):
     maintain.init_group(str(tmp_path / "closed"), umask=0o022)
     policy = json.loads((tmp_path / "closed" / layout.GROUP_FILE).read_text())
     assert policy["umask"] == "0022" and policy["format"] == layout.FORMAT
+
+
+def test_config_file_and_command_line(tap, tmp_path, capsys):
+    from jobdesk.cli import main
+    group_dir = tmp_path / "shared"
+    assert main(["group", "init", str(group_dir), "--name", "lab"]) == 0
+    alice = Desk(tmp_path / "alice", groups=[str(group_dir)], wait_window=5)
+    alice.submit(tap.url, _query(80)).wait(progress=False)
+    root = tmp_path / "bob"
+    root.mkdir()
+    (root / "config.toml").write_text(f'[[groups]]\nlocation = "{group_dir}"\nreadonly = true\n')
+    assert Desk(root).groups.names == ["lab"]
+    assert Desk(root, groups=[]).groups.names == [], "Desk(groups=...) overrides the file"
+    capsys.readouterr()
+    assert main(["--root", str(root), "group", "rebuild-index"]) == 0
+    assert "1 group results newly listed" in capsys.readouterr().out
+    assert main(["--root", str(root), "group", "verify", "--json"]) == 0
+    assert json.loads(capsys.readouterr().out)["problems"] == []
+    (group_dir / layout.object_path("f" * 64)).parent.mkdir(parents=True, exist_ok=True)
+    (group_dir / layout.object_path("f" * 64)).write_bytes(b"stray")
+    os.utime(group_dir / layout.object_path("f" * 64), (0, 0))   # older than the grace time
+    assert main(["--root", str(root), "group", "prune", "--dry-run"]) == 0
+    assert f"would remove: {layout.object_path('f' * 64)}" in capsys.readouterr().out
+    assert (group_dir / layout.object_path("f" * 64)).exists()
+    assert main(["--root", str(root), "cache", "--json"]) == 0
+    layers = json.loads(capsys.readouterr().out)["layers"]
+    assert [layer["name"] for layer in layers] == ["personal", "lab"]
