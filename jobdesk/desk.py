@@ -197,6 +197,21 @@ class Desk:
         name, rel = self.groups.publish(record, self.store, group=group)
         return f"{name}:{rel}"
 
+    def pin(self, job_id: str, *, pinned: bool = True) -> None:
+        """Keep a job's record and files through every ``prune`` (``pinned=False`` unpins)."""
+        from jobdesk.groups import eviction
+        self.job(job_id)
+        eviction.pin(self.root, job_id, pinned=pinned)
+
+    def prune(self, *, max_bytes: int | None = None, older_than=None,
+              dry_run: bool = True) -> dict:
+        """Shrink the personal cache: drop finished, unpinned records older than ``older_than``
+        (seconds or a timedelta), then the oldest until the files fit ``max_bytes``; a record
+        goes together with its files, and files another record uses stay. Dry run by default."""
+        from jobdesk.groups import eviction
+        return eviction.prune(self.index, self.store, self.root, max_bytes=max_bytes,
+                              older_than=_seconds(older_than), dry_run=dry_run)
+
     # --- group caches (see jobdesk.groups) ------------------------------------------------------
 
     def _from_groups(self, record: dict, oldest: float | None) -> bool:
