@@ -130,7 +130,8 @@ class Store:
     def clean_temp(self) -> None:
         """Remove temp files left by dead processes of this host (none is ever registered)."""
         for f in self.tmp.iterdir():
-            pid = f.name.split("-", 1)[0]
+            # "<pid>-..." from temp(), ".<pid>-....partial" from writers working beside it
+            pid = f.name.lstrip(".").split("-", 1)[0]
             if pid.isdigit() and not _pid_alive(int(pid)):
                 f.unlink(missing_ok=True)
 

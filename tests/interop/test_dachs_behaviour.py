@@ -240,7 +240,7 @@ def test_delete_of_an_executing_job_does_not_stop_it(http, marker):
     job_id = job.rstrip("/").rsplit("/", 1)[1]
     run(http, job)
     assert wait_for(http, job, {"EXECUTING"}) == "EXECUTING"
-    for _ in range(100):   # the worker process shows up shortly after the phase says EXECUTING
+    for _ in range(300):   # the worker shows up a few seconds after the phase says EXECUTING
         if _taprun_pids(job_id):
             break
         time.sleep(0.1)
