@@ -256,10 +256,9 @@ class Desk:
                 or record.get("layer") in (None, "personal")
                 or self.store.has(record["parquet_sha256"])):
             return True
-        try:
-            served = self.groups.layer(record["layer"]).serve(record["key"], self.store)
-        except KeyError:
-            served = None
+        if record["layer"] not in self.groups.names:
+            return False  # that group is not configured on this desk: nothing to judge it by
+        served = self.groups.layer(record["layer"]).serve(record["key"], self.store)
         if served is not None:
             self._record_served(record["id"], served)
             return True
@@ -629,7 +628,8 @@ class Job:
                 f"(MAXREC={r.get('maxrec')} or a service limit); it is not the full answer",
                 rows=r.get("rows"), service=r["service"])
         if not self.desk._copied_here(r):  # listed from a group cache, not fetched yet
-            raise CacheCorrupt(f"job {self.id}: {self.record.get('error')}")
+            raise CacheCorrupt(f"job {self.id}: its files are in group cache {r['layer']}, "
+                               "which has no good copy or is not configured on this desk")
         r = self.record
         try:
             return self.desk.store.checked(r["parquet_sha256"], r.get("parquet_stat"))

@@ -17,6 +17,7 @@ import socket
 from pathlib import Path
 from typing import BinaryIO, Iterator
 
+from jobdesk.errors import ConfigError
 from jobdesk.groups import layout
 
 CHUNK = 1 << 20
@@ -185,13 +186,21 @@ class FsspecStorage:
     kind = "fsspec"
 
     def __init__(self, url: str, storage_options: dict | None = None):
-        import fsspec
+        try:
+            import fsspec
+        except ImportError:
+            raise ConfigError(f"group cache {url} needs fsspec",
+                              hint="pip install 'jobdesk[group-s3]'") from None
 
         options = dict(storage_options or {})
         options.setdefault("skip_instance_cache", True)
         if url.startswith(("s3://", "s3a://")):
             options.setdefault("use_listings_cache", False)
-        self.fs, self.base = fsspec.core.url_to_fs(url, **options)
+        try:
+            self.fs, self.base = fsspec.core.url_to_fs(url, **options)
+        except ImportError as exc:   # the protocol's package (s3fs, gcsfs, ...) is missing
+            raise ConfigError(f"group cache {url}: {exc}",
+                              hint="pip install 'jobdesk[group-s3]' for s3:// URLs") from None
         self.base = self.base.rstrip("/")
         self.location = url
 
