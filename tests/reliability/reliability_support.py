@@ -58,9 +58,10 @@ class Figures:
         """One tried case: held when the block ends without an exception."""
         try:
             yield
-        except BaseException:
-            self.add(category, name, tried=1, held=0, **extra)
-            raise
+        except BaseException as exc:
+            if not type(exc).__module__.startswith("hypothesis"):
+                self.add(category, name, tried=1, held=0, **extra)
+            raise  # hypothesis's own control flow (a rejected draw) is not a tried case
         self.add(category, name, tried=1, held=1, **extra)
 
 
