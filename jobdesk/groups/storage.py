@@ -12,7 +12,6 @@ from __future__ import annotations
 import contextlib
 import os
 import secrets
-import shutil
 import socket
 from pathlib import Path
 from typing import BinaryIO, Iterator
