@@ -58,7 +58,7 @@ def run(ctx: Context) -> CaseResult:
             f"VOTable in {first:.1f} s (service execution included)")
     parquet = desk.store.path(record["parquet_sha256"])
     job_url = record["job_url"]
-    ctx.shared["case1_job_url"] = job_url
+    ctx.forget_later(job_url)
 
     def hit():
         table = Desk(root).submit(tap.url, ADQL, maxrec=rows).table()

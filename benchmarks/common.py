@@ -97,6 +97,18 @@ class Context:
                      f" ({self._big_tap.url})")
         return self._big_tap
 
+    def forget_later(self, job_url: str) -> None:
+        """Delete a big job on the service when the run ends (the service state is cached
+        between runs; its result files should not pile up there)."""
+        def delete() -> None:
+            from jobdesk.remote import Remote
+
+            try:
+                Remote(job_url.rsplit("/async/", 1)[0], attempts=1).delete(job_url)
+            except Exception:  # noqa: BLE001 - cleanup only; the destruction time comes anyway
+                pass
+        self._stack.callback(delete)
+
     def enter(self, cm):
         return self._stack.enter_context(cm)
 
