@@ -94,6 +94,7 @@ def plan(runs: int, span: float) -> list[tuple[str, dict | None, float]]:
     return points
 
 
+@pytest.mark.timeout(3600 if FULL else 300)
 def test_kill_anywhere_then_resubmit(world, figures):
     work, tap, proxy, ctx = world
     root = work / "desk"
