@@ -22,7 +22,7 @@ from pathlib import Path
 from jobdesk.errors import ConfigError, GroupCacheWarning, JobdeskError, PublishRefused
 from jobdesk.groups import layout
 from jobdesk.groups.config import Group
-from jobdesk.groups.storage import CHUNK, PosixStorage, open_storage
+from jobdesk.groups.storage import PosixStorage, open_storage
 
 DEDUP_LOOK = 3     # newest manifests compared before publishing a result again
 USAGE_TTL = 60.0   # seconds a usage count is reused (walking a big bucket is slow)
@@ -146,7 +146,7 @@ class GroupLayer:
         copied = 0
         try:
             with self.storage.open(rel) as src, open(tmp, "wb") as dst:
-                while block := src.read(CHUNK):
+                while block := src.read(self.storage.read_block):
                     digest.update(block)
                     dst.write(block)
                     copied += len(block)

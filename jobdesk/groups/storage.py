@@ -34,6 +34,7 @@ class PosixStorage:
     """A directory on a local or network filesystem (NFS, Lustre, CephFS, ...)."""
 
     kind = "posix"
+    read_block = CHUNK
 
     def __init__(self, root: Path | str):
         self.root = Path(root).expanduser()
@@ -183,6 +184,7 @@ class FsspecStorage:
     """Any fsspec filesystem; written for S3-compatible object stores (one PUT per file)."""
 
     kind = "fsspec"
+    read_block = 16 * CHUNK   # one ranged GET per read: fewer, larger requests
 
     def __init__(self, url: str, storage_options: dict | None = None):
         try:
@@ -210,7 +212,7 @@ class FsspecStorage:
         return self.fs.cat_file(self._abs(rel))
 
     def open(self, rel: str) -> BinaryIO:
-        return self.fs.open(self._abs(rel), "rb", block_size=8 * CHUNK, cache_type="none")
+        return self.fs.open(self._abs(rel), "rb", block_size=self.read_block, cache_type="none")
 
     def exists(self, rel: str) -> bool:
         return self.size(rel) is not None
