@@ -47,7 +47,7 @@ def query(n: int) -> str:
 
 
 def jobdesk_client(ctx: Context, url: str, tag: str, n: int) -> dict:
-    desk = Desk(ctx.work / f"case4-{tag}", limits={url: 1000})
+    desk = Desk(ctx.work / f"case4-{tag.rsplit('-', 1)[0]}", limits={url: 1000})
     job = desk.submit(url, query(n)).wait(progress=False)
     record = job.record
     knew = next(h["at"] for h in desk.index.history(job.id) if h["phase"] == "COMPLETED")
