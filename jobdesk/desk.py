@@ -352,12 +352,14 @@ class Desk:
                                         fmt=record.get("fmt") or "votable", uploads=sent or None,
                                         run_id=record["run_id"])
                 self.index.update(job_id, job_url=job_url, phase=phases.SUBMITTED,
-                                  submitted=time.time(), note="created on the service")
+                                  submitted=time.time(), error=None,
+                                  note="created on the service")
                 remote.run(job_url)
                 self._announce(job_id)
             else:
                 self.index.update(job_id, job_url=job_url, phase=phases.SUBMITTED,
-                                  submitted=time.time(), note="re-attached after a crash")
+                                  submitted=time.time(), error=None,
+                                  note="re-attached after a crash")
                 if remote.status(job_url).phase == phases.PENDING:
                     remote.run(job_url)
         except JobdeskError as exc:
@@ -482,7 +484,7 @@ class Desk:
                           rows=summary.rows, truncated=int(truncated), result_sha256=raw_sha,
                           result_bytes=got.bytes, result_stat=stat_stamp(raw_path),
                           parquet_sha256=table_sha, parquet_stat=stat_stamp(table_path),
-                          server=server, note="result saved")
+                          server=server, error=None, note="result saved")
         if not truncated:
             self._publish_quietly(job_id)
         if truncated:
