@@ -152,6 +152,7 @@ def test_a_fault_that_never_ends_is_a_typed_error_then_recovers(tap, proxy, tmp_
             assert again.id == first.id, f"the record did not survive: {first.record['error']}"
         again.wait(timeout=90, progress=False)
         assert_correct(tap, again, query)
+        assert again.record["error"] is None, "a finished job shows no old error"
         assert len(server_jobs(tap, query)) == 1
         check_consistent(tmp_path / "d")
 
