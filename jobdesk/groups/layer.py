@@ -10,6 +10,7 @@ layer or to the service.
 
 from __future__ import annotations
 
+import errno
 import grp
 import hashlib
 import itertools
@@ -148,8 +149,10 @@ class GroupLayer:
             with self.storage.open(rel) as src, open(tmp, "wb") as dst:
                 while block := src.read(self.storage.read_block):
                     digest.update(block)
-                    dst.write(block)
                     copied += len(block)
+                    if copied > size:
+                        break   # longer than the manifest says: stop before filling the disk
+                    dst.write(block)
         except FileNotFoundError:
             tmp.unlink(missing_ok=True)
             self._report(f"{self._where(manifest)} points at {self._where(rel)}, which is "
@@ -157,12 +160,16 @@ class GroupLayer:
             return None
         except OSError as exc:
             tmp.unlink(missing_ok=True)
-            self._report(f"cannot read {self._where(rel)}: {exc}; not served")
+            if exc.errno == errno.ELOOP:
+                self._set_aside(rel, f"is a link ({exc.strerror}); group objects must be files")
+            else:
+                self._report(f"cannot read {self._where(rel)}: {exc}; not served")
             return None
         if digest.hexdigest() != sha256 or copied != size:
             tmp.unlink(missing_ok=True)
+            got = f"more than {size}" if copied > size else str(copied)
             self._set_aside(rel, f"object does not match its checksum "
-                                 f"(got {copied} bytes, sha256 {digest.hexdigest()[:12]}…)")
+                                 f"(got {got} bytes, manifest says {size})")
             return None
         try:
             return store.commit(tmp, sha256)[1]

@@ -10,6 +10,7 @@ write; ``layer`` does.
 from __future__ import annotations
 
 import contextlib
+import errno
 import os
 import secrets
 import socket
@@ -52,10 +53,17 @@ class PosixStorage:
     # --- reading ----------------------------------------------------------------------------
 
     def read(self, rel: str) -> bytes:
-        return self._abs(rel).read_bytes()
+        with self.open(rel) as fh:
+            return fh.read()
 
     def open(self, rel: str) -> BinaryIO:
-        return open(self._abs(rel), "rb")
+        """Open a file of the group for reading; never through a link out of it (ELOOP)."""
+        path = self._abs(rel)
+        root = os.path.realpath(self.root)
+        parent = os.path.realpath(path.parent)
+        if parent != root and not parent.startswith(root + os.sep):
+            raise OSError(errno.ELOOP, "a directory link leads out of the group", str(path))
+        return os.fdopen(os.open(path, os.O_RDONLY | os.O_NOFOLLOW), "rb")
 
     def exists(self, rel: str) -> bool:
         return self._abs(rel).exists()
