@@ -101,20 +101,17 @@ def _link_out(group: Path, sha: str, target: Path) -> Path:
     return obj
 
 
-@pytest.mark.xfail(strict=True, reason="groups/storage.py follows links: a group object that is "
-                   "a symlink out of the group is read (and served when its bytes match). Fix: "
-                   "PosixStorage.open refuses links (O_NOFOLLOW on the object, realpath of its "
-                   "directory inside the group root) and copy_verified treats that as a bad "
-                   "object (set aside, not served)")
 def test_object_linked_out_of_the_group_is_not_read(tap, tmp_path, figures):
     group, job = published(tap, tmp_path, 34)
     sha = job.record["parquet_sha256"]
     outside = tmp_path / "outside" / "copy.parquet"
     outside.parent.mkdir()
     outside.write_bytes((group / layout.object_path(sha)).read_bytes())
-    _link_out(group, sha, outside)
-    bob, served, went = colleague(tap, tmp_path, group, 34)
-    assert went and served.record["layer"] == "personal", "served through a link out of the group"
+    with figures.case("security", "group cache: object linked out of the group"):
+        _link_out(group, sha, outside)
+        bob, served, went = colleague(tap, tmp_path, group, 34)
+        assert went and served.record["layer"] == "personal", "served through a link out"
+        assert outside.exists(), "the file outside the group is left alone"
 
 
 @pytest.fixture
