@@ -33,7 +33,6 @@ from jobdesk.store import Store, stat_stamp
 
 DEFAULT_RUNNING_LIMIT = 4     # jobs per service at once; common practice, no source
 LEASE_SECONDS = 60.0          # a driver renews its lease at least this often
-DRIVE_SLICE = 20.0            # seconds of waiting on the service per lease renewal
 UNREACHABLE_SLICES = 3        # consecutive failed slices before wait() gives up (job kept)
 FAILED = frozenset({phases.ERROR, phases.ABORTED, phases.LOST, phases.ARCHIVED})
 
@@ -75,6 +74,10 @@ class Desk:
         self.owner = this_process()
         self._remote_options = {"wait_window": wait_window, "attempts": attempts,
                                 "timeout": timeout}
+        # Waiting goes in slices of one WAIT window (plus a second, so the window's own read
+        # fits), renewing the lease between them; the last status read carries over.
+        self.drive_slice = wait_window + 1.0
+        self._last_status: dict[str, object] = {}
         self._sessions: dict[str, object] = {}
         self.groups = GroupCaches(groups, root=self.root)  # lookup order: personal, then these
 
@@ -297,10 +300,7 @@ class Desk:
         """
         owner = owner or self.owner
         advanced = 0
-        for record in self.index.list(phase=sorted(phases.ACTIVE | {phases.COMPLETED}),
-                                      service=service, limit=None):
-            if record["phase"] == phases.COMPLETED and record.get("parquet_sha256"):
-                continue
+        for record in self.index.unfinished(service=service):
             try:
                 if record["phase"] == phases.LOCAL:
                     advanced += self._try_start(record, owner=owner)["phase"] != phases.LOCAL
@@ -410,7 +410,9 @@ class Desk:
                 status = remote.status(record["job_url"])
                 seen(status)
             else:
-                status = remote.wait(record["job_url"], deadline=deadline, on_status=seen)
+                status = remote.wait(record["job_url"], deadline=deadline, on_status=seen,
+                                     known=self._last_status.get(record["job_url"]))
+            self._last_status[record["job_url"]] = status
             if status.phase == phases.COMPLETED:
                 self._fetch(record, status, remote)
             elif status.phase == phases.ERROR:
@@ -575,7 +577,7 @@ class Job:
                 if deadline is not None and time.monotonic() >= deadline:
                     raise WaitTimeout(f"job {self.id} is still {record['phase']} after "
                                       f"{timeout:g} s", service=record["service"])
-                slice_end = time.monotonic() + DRIVE_SLICE
+                slice_end = time.monotonic() + self.desk.drive_slice
                 if deadline is not None:
                     slice_end = min(slice_end, deadline)
                 try:

@@ -71,6 +71,14 @@ def _v1_to_v2(db: sqlite_utils.Database) -> None:
                                    pk="service"))
 
 
+@_migration
+def _v2_to_v3(db: sqlite_utils.Database) -> None:
+    # The server's poller asks every few seconds for the jobs that still need work; finished
+    # jobs whose result was never fetched are few among many, so they get an index of their own.
+    db.execute("CREATE INDEX idx_jobs_unfetched ON jobs (created) "
+               "WHERE phase = 'COMPLETED' AND parquet_sha256 IS NULL")
+
+
 SCHEMA_VERSION = len(MIGRATIONS)
 BUSY_TIMEOUT_MS = 30_000
 
@@ -176,6 +184,21 @@ class Index:
             args += [int(limit), int(offset)]
         with self._lock:
             cur = self.db.execute(sql, args)
+            cols = [d[0] for d in cur.description]
+            return [_decode(dict(zip(cols, r))) for r in cur.fetchall()]
+
+    def unfinished(self, *, service: str | None = None) -> list[dict]:
+        """Records that still need work: active ones, and finished ones not yet fetched.
+
+        Two indexed reads (never a scan of the finished jobs, which can number 100,000s).
+        """
+        where, args = ("AND service = ?", [service]) if service else ("", [])
+        active = sorted(phases.ACTIVE)
+        sql = (f"SELECT * FROM jobs WHERE phase IN ({','.join('?' * len(active))}) {where} "
+               f"UNION ALL SELECT * FROM jobs INDEXED BY idx_jobs_unfetched "
+               f"WHERE phase = 'COMPLETED' AND parquet_sha256 IS NULL {where} ORDER BY created")
+        with self._lock:
+            cur = self.db.execute(sql, [*active, *args, *args])
             cols = [d[0] for d in cur.description]
             return [_decode(dict(zip(cols, r))) for r in cur.fetchall()]
 

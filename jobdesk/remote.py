@@ -224,7 +224,8 @@ class Remote:
         return _job_status(job_url, response.content, self.service)
 
     def wait(self, job_url: str, *, deadline: float | None = None,
-             on_status: Callable[[JobStatus], None] | None = None) -> JobStatus:
+             on_status: Callable[[JobStatus], None] | None = None,
+             known: JobStatus | None = None) -> JobStatus:
         """Follow the job until a terminal phase or ``deadline`` (a ``time.monotonic()`` value).
 
         Uses UWS 1.1 blocking WAIT when the job document says version 1.1 and the service is seen
@@ -232,9 +233,12 @@ class Remote:
         quickly) and doubles up to ``max_backoff``.  Transient failures are retried until the
         deadline (without one, for ``attempts`` consecutive failed readings).  At the deadline the
         last status is returned: the caller decides what that means.
+
+        ``known`` is the status the caller last read (from an earlier call): waiting then starts
+        with a blocking read instead of a plain one, saving a request per call.
         """
-        last: JobStatus | None = None
-        blocking: bool | None = None  # unknown until the first document is read
+        last: JobStatus | None = known
+        blocking: bool | None = None if known is None else _at_least_1_1(known.uws_version)
         backoff = FIRST_POLL
         failures = 0
         while True:
@@ -247,7 +251,9 @@ class Remote:
                     current = self.status(job_url)
                 else:
                     window = self._window(deadline)
-                    if blocking and last.phase in WAITABLE and window >= 1:
+                    if blocking and last.phase in WAITABLE and window < 1:
+                        return last  # the deadline is here: a short poll would only cost requests
+                    if blocking and last.phase in WAITABLE:
                         started = time.monotonic()
                         current = self.status(job_url, wait=window, phase=last.phase)
                         if (current.phase == last.phase

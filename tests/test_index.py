@@ -129,3 +129,14 @@ def test_version_changes_on_every_update(tmp_path):
     assert ix.version() != v1
     ix.forget("a")
     assert ix.count() == 0 and ix.integrity() == "ok"
+
+
+def test_unfinished_lists_active_and_unfetched_only(tmp_path):
+    ix = Index(tmp_path / "i.sqlite")
+    wanted = {"run": phases.EXECUTING, "wait": phases.LOCAL, "todo": phases.COMPLETED}
+    done = {"done": phases.COMPLETED, "bad": phases.ERROR}
+    for n, (job_id, phase) in enumerate({**wanted, **done}.items()):
+        ix.claim(f"k{n}", _record(job_id, phase=phase, created=1000.0 + n), reuse=lambda r: True)
+    ix.update("done", parquet_sha256="b" * 64)
+    assert {r["id"] for r in ix.unfinished()} == set(wanted)
+    assert ix.unfinished(service="http://other/tap") == []

@@ -299,6 +299,22 @@ def test_wait_returns_the_last_status_at_the_deadline(tap):
     remote.abort(job)
 
 
+def test_a_known_status_starts_with_a_blocking_read(tap):
+    tap.configure(exec_delay=1.5)
+    session = requests.Session()
+    seen = Recorder(session)
+    remote = make_remote(tap, session)
+    job = remote.create(QUERY)
+    remote.run(job)
+    first = remote.status(job)
+    before = len(seen.seen)
+    final = remote.wait(job, known=first)
+    assert final.phase == "COMPLETED"
+    reads = seen.seen[before:]
+    # UWS 1.1 §2.2.1.2: with the phase already known, every read blocks (no plain read first).
+    assert reads and all("WAIT" in {k.upper() for k in query} for _, _, query in reads)
+
+
 def test_an_unknown_job_is_lost(tap):
     remote = make_remote(tap)
     with pytest.raises(JobLost):
