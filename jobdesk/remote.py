@@ -16,8 +16,10 @@ import email.utils
 import hashlib
 import logging
 import os
+import queue
 import random
 import re
+import threading
 import time
 from collections.abc import Callable, Iterator, Mapping
 from dataclasses import dataclass, field
@@ -423,7 +425,7 @@ class Remote:
         result should be raises the matching error.  On failure ``dest`` is removed.
         """
         dest = Path(dest)
-        state: dict[str, Any] = {"written": 0, "hash": hashlib.sha256(), "ranges": False,
+        state: dict[str, Any] = {"written": 0, "hash": _Hasher(), "ranges": False,
                                  "type": None}
         handle = open(dest, "wb")  # noqa: SIM115 - closed in the finally below
 
@@ -431,7 +433,8 @@ class Remote:
             handle.seek(0)
             handle.truncate()
             state["written"] = 0
-            state["hash"] = hashlib.sha256()
+            state["hash"].close()
+            state["hash"] = _Hasher()
 
         def attempt() -> None:
             headers = {"Accept-Encoding": "identity"}  # byte offsets must mean file offsets
@@ -482,6 +485,7 @@ class Remote:
             raise from_transport(exc, service=self.service) from None
         finally:
             handle.close()
+            digest = state["hash"].close()
             if not ok:
                 dest.unlink(missing_ok=True)
         content_type = state["type"]
@@ -491,7 +495,7 @@ class Remote:
                 dest.unlink(missing_ok=True)
                 raise JobFailed(self._scrub(f"the result is an error document: {message}"),
                                 summary=self._scrub(message), service=self.service)
-        return Downloaded(path=dest, bytes=state["written"], sha256=state["hash"].hexdigest(),
+        return Downloaded(path=dest, bytes=state["written"], sha256=digest,
                           content_type=content_type)
 
     # --- HTTP, retries and errors -------------------------------------------------------------
@@ -816,6 +820,31 @@ def _response_message(response: requests.Response) -> str:
     message = _document_message(body)
     message = " ".join(re.sub(r"<[^>]{0,200}>", " ", message).split())  # strip stray HTML tags
     return _shorten(message or response.reason or "(empty answer)")
+
+
+class _Hasher:
+    """sha256 on a helper thread, so hashing overlaps receiving and writing (hashlib lets go
+    of the GIL for large pieces); a bounded queue keeps memory flat."""
+
+    def __init__(self) -> None:
+        self._digest = hashlib.sha256()
+        self._pieces: queue.Queue[bytes | None] = queue.Queue(maxsize=32)
+        self._thread = threading.Thread(target=self._run, name="jobdesk-sha256", daemon=True)
+        self._thread.start()
+
+    def _run(self) -> None:
+        while (piece := self._pieces.get()) is not None:
+            self._digest.update(piece)
+
+    def update(self, piece: bytes) -> None:
+        self._pieces.put(piece)
+
+    def close(self) -> str:
+        """Finish and return the hex digest of everything given (idempotent)."""
+        if self._thread.is_alive():
+            self._pieces.put(None)
+            self._thread.join()
+        return self._digest.hexdigest()
 
 
 def _body_pieces(response: requests.Response) -> Iterator[bytes]:
