@@ -12,6 +12,7 @@ import multiprocessing as mp
 import os
 import secrets
 import time
+import traceback
 import warnings
 
 from jobdesk import Desk
@@ -29,7 +30,7 @@ def _object(store: Store, data: bytes) -> str:
     return store.commit(tmp)[0]
 
 
-def _publisher(group, root, start, out):
+def _publisher(group, root, ready, go, out):
     """Publish ROUNDS results: a unique raw object each, a per-key parquet object shared by
     every publisher (so the same object is written by several processes at once)."""
     store = Store(root)
@@ -37,8 +38,8 @@ def _publisher(group, root, start, out):
     with warnings.catch_warnings(record=True) as seen:
         warnings.simplefilter("always")
         layer = GroupLayer(group)
-        while time.time() < start:
-            time.sleep(0.001)
+        ready.put(os.getpid())
+        go.wait()
         for i in range(ROUNDS):
             key = KEYS[i % len(KEYS)]
             raw = os.urandom(30_000) + secrets.token_bytes(8)
@@ -51,15 +52,16 @@ def _publisher(group, root, start, out):
     out.put({"written": written, "warnings": [str(w.message) for w in seen]})
 
 
-def _reader(group, root, start, stop, out):
+def _reader(group, root, ready, go, out):
     store = Store(root)
     served = parsed = 0
     with warnings.catch_warnings(record=True) as seen:
         warnings.simplefilter("always")
         layer = GroupLayer(group)
-        while time.time() < start:
-            time.sleep(0.001)
-        while time.time() < stop:
+        ready.put(os.getpid())
+        go.wait()
+        stop = time.monotonic() + 3
+        while time.monotonic() < stop:
             for key in KEYS:
                 parsed += sum(1 for _ in layer.manifests(key))
                 got = layer.serve(key, store)
@@ -69,19 +71,25 @@ def _reader(group, root, start, stop, out):
     out.put({"served": served, "parsed": parsed, "warnings": [str(w.message) for w in seen]})
 
 
-def test_many_processes_publish_and_read_the_same_keys(tmp_path, place):
-    ctx = mp.get_context("fork")
-    out = ctx.Queue()
-    start = time.time() + 1.0
-    group = place.group(readonly=False)
-    procs = [ctx.Process(target=_publisher, args=(group, tmp_path / f"pub{i}", start, out))
-             for i in range(PUBLISHERS)]
-    procs += [ctx.Process(target=_reader, args=(place.group(readonly=True), tmp_path / f"rd{i}",
-                                                start, start + 3, out))
-              for i in range(READERS)]
+def _start_together(procs, ready, go):
     for p in procs:
         p.start()
-    results = [out.get(timeout=120) for _ in procs]
+    for _ in procs:
+        ready.get(timeout=240)
+    go.set()
+
+
+def test_many_processes_publish_and_read_the_same_keys(tmp_path, place):
+    ctx = mp.get_context("spawn")   # fresh interpreters: nothing inherited from pytest's threads
+    out, ready, go = ctx.Queue(), ctx.Queue(), ctx.Event()
+    group = place.group(readonly=False)
+    procs = [ctx.Process(target=_publisher, args=(group, tmp_path / f"pub{i}", ready, go, out))
+             for i in range(PUBLISHERS)]
+    procs += [ctx.Process(target=_reader, args=(place.group(readonly=True), tmp_path / f"rd{i}",
+                                                ready, go, out))
+              for i in range(READERS)]
+    _start_together(procs, ready, go)
+    results = [out.get(timeout=240) for _ in procs]
     for p in procs:
         p.join(30)
         assert p.exitcode == 0
@@ -107,32 +115,35 @@ QUERIES = [f"SELECT TOP {n} source_id, mag_lime FROM orrery.sources ORDER BY sou
            for n in (110, 120, 130)]
 
 
-def _member(root, group, url, start, out):
+def _member(root, group, url, ready, go, out):
     desk = Desk(root, groups=[group], wait_window=5)
-    while time.time() < start:
-        time.sleep(0.001)
-    with warnings.catch_warnings(record=True) as seen:
-        warnings.simplefilter("always")
-        answer = {}
-        for query in QUERIES:
-            job = desk.submit(url, query).wait(progress=False)
-            answer[query] = {"layer": job.record["layer"],
-                             "ids": [int(x) for x in job.table()["source_id"]],
-                             "verified": desk.store.verify(job.record["parquet_sha256"])}
-    out.put(json.dumps({"answer": answer, "warnings": [str(w.message) for w in seen]}))
+    ready.put(os.getpid())
+    go.wait()
+    try:
+        with warnings.catch_warnings(record=True) as seen:
+            warnings.simplefilter("always")
+            answer = {}
+            for query in QUERIES:
+                job = desk.submit(url, query).wait(progress=False)
+                answer[query] = {"layer": job.record["layer"],
+                                 "ids": [int(x) for x in job.table()["source_id"]],
+                                 "verified": desk.store.verify(job.record["parquet_sha256"])}
+        out.put(json.dumps({"answer": answer, "warnings": [str(w.message) for w in seen]}))
+    except BaseException:
+        out.put(json.dumps({"error": traceback.format_exc(), "history": [
+            (j.record, desk.index.history(j.id)) for j in desk.jobs(limit=None)]}, default=str))
 
 
 def test_members_submitting_the_same_queries_at_once(tap, tmp_path, place):
-    ctx = mp.get_context("fork")
-    out = ctx.Queue()
-    start = time.time() + 1.0
+    ctx = mp.get_context("spawn")
+    out, ready, go = ctx.Queue(), ctx.Queue(), ctx.Event()
     procs = [ctx.Process(target=_member, args=(tmp_path / f"m{i}", place.group(readonly=False),
-                                               tap.url, start, out)) for i in range(4)]
-    for p in procs:
-        p.start()
-    results = [json.loads(out.get(timeout=120)) for _ in procs]
+                                               tap.url, ready, go, out)) for i in range(4)]
+    _start_together(procs, ready, go)
+    results = [json.loads(out.get(timeout=240)) for _ in procs]
     for p in procs:
         p.join(30)
+    assert [r for r in results if "error" in r] == []
     assert [w for r in results for w in r["warnings"]] == []
     for query in QUERIES:
         answers = [r["answer"][query] for r in results]
