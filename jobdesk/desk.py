@@ -202,7 +202,7 @@ class Desk:
 
     def pin(self, job_id: str, *, pinned: bool = True) -> None:
         """Keep a job's record and files through every ``prune`` (``pinned=False`` unpins)."""
-        from jobdesk.groups import eviction
+        from jobdesk import eviction
         self.job(job_id)
         eviction.pin(self.root, job_id, pinned=pinned)
 
@@ -211,7 +211,7 @@ class Desk:
         """Shrink the personal cache: drop finished, unpinned records older than ``older_than``
         (seconds or a timedelta), then the oldest until the files fit ``max_bytes``; a record
         goes together with its files, and files another record uses stay. Dry run by default."""
-        from jobdesk.groups import eviction
+        from jobdesk import eviction
         return eviction.prune(self.index, self.store, self.root, max_bytes=max_bytes,
                               older_than=_seconds(older_than), dry_run=dry_run)
 

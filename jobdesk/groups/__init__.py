@@ -5,8 +5,8 @@ truth is immutable files (content-addressed objects and one manifest per publish
 see docs/group-layout.md); each member's SQLite index stays private and only *records* what it
 used. :class:`GroupCaches` is what ``Desk`` talks to; the modules below do one job each:
 ``layout`` (paths, manifest format), ``storage`` (POSIX and fsspec), ``layer`` (serve verified,
-publish), ``claims`` (in-flight sharing), ``maintain`` (verify, prune, rebuild), ``eviction``
-(the personal cache's size/age limits and pins), ``config`` (which groups).
+publish), ``claims`` (in-flight sharing), ``maintain`` (verify, prune, rebuild), ``config`` (which
+groups). The personal cache's own size/age limits live in ``jobdesk.eviction``.
 """
 
 from __future__ import annotations

@@ -1,7 +1,6 @@
 """Keeping the personal cache in bounds: by age and total size, sparing pinned jobs.
 
-Lives beside the group code because group results make eviction safe to use: what the group
-holds can be copied back. The rule: a record and its files go together. A record is dropped
+The rule: a record and its files go together. A record is dropped
 (forgotten) with its result, never left pointing at a missing file; a file still referenced
 by any kept record (the same result reused by two records, an upload) stays. Running jobs and
 pinned jobs are never dropped. Pins are empty marker files ``pins/<job id>`` in the root.
