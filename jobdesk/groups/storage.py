@@ -19,16 +19,9 @@ from typing import BinaryIO, Iterator
 
 from jobdesk.errors import ConfigError
 from jobdesk.groups import layout
+from jobdesk.store import fsync_dir
 
 CHUNK = 1 << 20
-
-
-def _fsync_dir(path: Path) -> None:
-    fd = os.open(path, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
 
 
 class PosixStorage:
@@ -143,31 +136,26 @@ class PosixStorage:
             final = self._abs(rel)
             self._mkdirs(final.parent)
             os.replace(tmp, final)
-            _fsync_dir(final.parent)
+            fsync_dir(final.parent)
         except BaseException:
             tmp.unlink(missing_ok=True)
             raise
 
     def put_bytes(self, rel: str, data: bytes) -> None:
-        fd, tmp = self._temp()
-        try:
-            view = memoryview(data)
-            while view:
-                view = view[os.write(fd, view):]
-        except BaseException:
-            os.close(fd)
-            tmp.unlink(missing_ok=True)
-            raise
-        self._place(fd, tmp, rel)
+        self._put(rel, [data])
 
     def put_file(self, rel: str, local: Path) -> None:
+        with open(local, "rb") as src:
+            self._put(rel, iter(lambda: src.read(CHUNK), b""))
+
+    def _put(self, rel: str, blocks) -> None:
+        """Write the blocks to a temp file beside the target, then place it (fsync + rename)."""
         fd, tmp = self._temp()
         try:
-            with open(local, "rb") as src:
-                while block := src.read(CHUNK):
-                    view = memoryview(block)
-                    while view:
-                        view = view[os.write(fd, view):]
+            for block in blocks:
+                view = memoryview(block)
+                while view:
+                    view = view[os.write(fd, view):]
         except BaseException:
             os.close(fd)
             tmp.unlink(missing_ok=True)
