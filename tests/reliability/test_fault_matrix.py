@@ -132,13 +132,12 @@ def test_a_fault_that_never_ends_is_a_typed_error_then_recovers(tap, proxy, tmp_
                                                                monkeypatch, step):
     """A service that keeps refusing: a clear error, the record kept, and the same call works
     once the service is back, still with one server job."""
-    import jobdesk.desk as desk_module
-    monkeypatch.setattr(desk_module, "DRIVE_SLICE", 2.0)  # shorter slices: the test stays fast
     with figures.case("faults", f"503 for good at {step}"):
         method, path = STEPS[step]
         proxy.add(Rule(method, path, action="status", code=503, times=None))
         query = fresh_query()
         desk = make_desk(tmp_path / "d", attempts=2)
+        desk.drive_slice = 2.0  # shorter slices of waiting: the test stays fast
         kind, value = outcome(desk, proxy.url, query)
         assert kind == "error"
         assert_clear(value)
@@ -194,12 +193,11 @@ def test_download_reset_by_a_gateway_mid_body(tap, proxy, tmp_path, figures, aft
 
 def test_download_that_always_breaks_is_a_typed_error_and_leaves_nothing(tap, proxy, tmp_path,
                                                                         figures, monkeypatch):
-    import jobdesk.desk as desk_module
-    monkeypatch.setattr(desk_module, "DRIVE_SLICE", 2.0)
     with figures.case("faults", "every download cut"):
         proxy.add(Rule("GET", r"/results/result$", action="cut", after=500, times=None))
         query = fresh_query()
         desk = make_desk(tmp_path / "d", attempts=2)
+        desk.drive_slice = 2.0  # shorter slices of waiting: the test stays fast
         kind, value = outcome(desk, proxy.url, query)
         assert kind == "error"
         assert_clear(value)

@@ -136,7 +136,6 @@ adql_like = st.one_of(
           suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
 @given(adql_like)
 def test_submit_of_any_text_is_a_result_or_a_typed_error(tap, figures, monkeypatch, text):
-    monkeypatch.setattr(desk_module, "DRIVE_SLICE", 2.0)
     with figures.case("fuzz", "submit arbitrary ADQL"), \
             tempfile.TemporaryDirectory() as tmp:
         desk = Desk(Path(tmp) / "d", attempts=2, wait_window=1)
@@ -338,7 +337,6 @@ MAY_SUCCEED = {"result: VOTable as text/plain"}
 @pytest.mark.parametrize("case", list(HOSTILE))
 def test_hostile_answers_are_refused_with_a_typed_error(hostile, tmp_path, figures, monkeypatch,
                                                         case):
-    monkeypatch.setattr(desk_module, "DRIVE_SLICE", 1.0)
     monkeypatch.setattr(desk_module, "UNREACHABLE_SLICES", 1)
     hostile.answers = HOSTILE[case]
     root = tmp_path / "d"
@@ -386,7 +384,6 @@ def _transient(error: JobdeskError) -> bool:
                       st.builds(lambda n: VOTABLE.encode()[:n], st.integers(0, len(VOTABLE))),
                       st.builds(lambda n: JOB_DOC.encode()[:n], st.integers(0, len(JOB_DOC)))))
 def test_random_bytes_from_the_service_are_refused(hostile, figures, monkeypatch, step, body):
-    monkeypatch.setattr(desk_module, "DRIVE_SLICE", 1.0)
     monkeypatch.setattr(desk_module, "UNREACHABLE_SLICES", 1)
     hostile.answers = {step: (200, {"Content-Type": "text/xml"}, body)}
     with figures.case("fuzz", f"random bytes as the {step}"), \
