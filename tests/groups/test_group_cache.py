@@ -41,31 +41,31 @@ def _desk(tmp_path, name, *groups) -> Desk:
 
 
 def test_published_result_serves_a_colleague_without_the_service(tap, tmp_path, place):
-    alice = _desk(tmp_path, "alice", place.group(readonly=False))
-    first = alice.submit(tap.url, _query(1200), label="first").wait(progress=False)
+    member_a = _desk(tmp_path, "member_a", place.group(readonly=False))
+    first = member_a.submit(tap.url, _query(1200), label="first").wait(progress=False)
     assert len(place.manifests()) == 1
     before = _requests(tap)
 
-    bob = _desk(tmp_path, "bob", place.group(readonly=True))
+    member_b = _desk(tmp_path, "member_b", place.group(readonly=True))
     with warnings.catch_warnings():
         warnings.simplefilter("error", GroupCacheWarning)
-        job = bob.submit(tap.url, _query(1200))
+        job = member_b.submit(tap.url, _query(1200))
     assert _requests(tap) == before, "served from the group: no request to the service"
     assert job.phase == phases.COMPLETED and job.record["layer"] == "lab"
     assert list(job.table()["source_id"]) == list(first.table()["source_id"])
-    # The copy bob serves is his own, and it is the very file alice fetched.
+    # The copy member B serves is their own, and it is the very file member A fetched.
     assert job.record["result_sha256"] == first.record["result_sha256"]
-    assert bob.store.verify(job.record["parquet_sha256"])
+    assert member_b.store.verify(job.record["parquet_sha256"])
     prov = job.provenance()
     assert prov["lookup_order"] == ["personal", "lab"]
     assert prov["served"].startswith("served from group cache lab, published by ")
     assert prov["group"]["published"] and "@" in prov["group"]["publisher"]
     assert prov["served_from"] == "lab"
     # The sidebar lists it with its layer; a second submit is a plain personal hit.
-    assert [j.record["layer"] for j in bob.jobs()] == ["lab"]
-    assert bob.submit(tap.url, _query(1200)).id == job.id
+    assert [j.record["layer"] for j in member_b.jobs()] == ["lab"]
+    assert member_b.submit(tap.url, _query(1200)).id == job.id
     assert _requests(tap) == before
-    layers = {layer["name"]: layer for layer in bob.cache_summary()["layers"]}
+    layers = {layer["name"]: layer for layer in member_b.cache_summary()["layers"]}
     assert layers["lab"]["entries"] == 1 and layers["lab"]["readonly"] is True
 
 
@@ -88,29 +88,29 @@ def test_lookup_order_is_the_order_given(tap, tmp_path, place):
 
 
 def test_read_only_layer_never_publishes(tap, tmp_path, place):
-    bob = _desk(tmp_path, "bob", place.group(readonly=True))
-    job = bob.submit(tap.url, _query(50)).wait(progress=False)
+    member_b = _desk(tmp_path, "member_b", place.group(readonly=True))
+    job = member_b.submit(tap.url, _query(50)).wait(progress=False)
     assert job.rows == 50
     assert place.manifests() == [], "a read-only layer wrote nothing"
     with pytest.raises(PublishRefused, match="read-only"):
-        bob.publish(job.id)
+        member_b.publish(job.id)
     with pytest.raises(PublishRefused, match=r"group cache lab \(.*\) is read-only here"):
-        bob.publish(job.id, group="lab")
+        member_b.publish(job.id, group="lab")
     assert place.files("") == []
 
 
 def test_only_complete_results_are_published_and_opt_out_is_honoured(tap, tmp_path, place):
-    alice = _desk(tmp_path, "alice", place.group(readonly=False))
+    member_a = _desk(tmp_path, "member_a", place.group(readonly=False))
     with pytest.warns(TruncatedResultWarning):
-        cut = alice.submit(tap.url, _query(500), maxrec=20).wait(progress=False)
+        cut = member_a.submit(tap.url, _query(500), maxrec=20).wait(progress=False)
     assert cut.truncated
-    private = alice.submit(tap.url, _query(40), publish=False).wait(progress=False)
+    private = member_a.submit(tap.url, _query(40), publish=False).wait(progress=False)
     assert private.rows == 40
     assert place.manifests() == []
     with pytest.raises(PublishRefused, match="no complete result"):
-        alice.publish(cut.id)
+        member_a.publish(cut.id)
     # Published later on purpose: a manifest with the record's facts, written last.
-    where = alice.publish(private.id)
+    where = member_a.publish(private.id)
     rel = where.split(":", 1)[1]
     manifest = layout.parse_manifest(place.storage.read(rel), key=private.key)
     assert manifest["rows"] == 40 and manifest["overflow"] is False
@@ -122,28 +122,28 @@ def test_only_complete_results_are_published_and_opt_out_is_honoured(tap, tmp_pa
 
 
 def test_second_result_for_a_key_is_a_second_manifest(tap, tmp_path, place):
-    alice = _desk(tmp_path, "alice", place.group(readonly=False))
-    a = alice.submit(tap.url, _query(77)).wait(progress=False)
-    b = alice.submit(tap.url, _query(77), refresh=True).wait(progress=False)
+    member_a = _desk(tmp_path, "member_a", place.group(readonly=False))
+    a = member_a.submit(tap.url, _query(77)).wait(progress=False)
+    b = member_a.submit(tap.url, _query(77), refresh=True).wait(progress=False)
     assert a.key == b.key and a.id != b.id
     names = place.manifests()
     assert len(names) == 2 and len({n.rsplit("/", 1)[0] for n in names}) == 1
     # Publishing the same result again adds nothing (same object, same manifest).
-    assert alice.publish(b.id).split(":", 1)[1] in names
+    assert member_a.publish(b.id).split(":", 1)[1] in names
     assert len(place.manifests()) == 2
     # The newest is served first.
-    bob = _desk(tmp_path, "bob", place.group(readonly=True))
-    assert bob.submit(tap.url, _query(77)).record["result_sha256"] == b.record["result_sha256"]
+    member_b = _desk(tmp_path, "member_b", place.group(readonly=True))
+    assert member_b.submit(tap.url, _query(77)).record["result_sha256"] == b.record["result_sha256"]
 
 
 def test_max_age_and_refresh_skip_old_group_results(tap, tmp_path, place):
-    alice = _desk(tmp_path, "alice", place.group(readonly=False))
-    alice.submit(tap.url, _query(33)).wait(progress=False)
+    member_a = _desk(tmp_path, "member_a", place.group(readonly=False))
+    member_a.submit(tap.url, _query(33)).wait(progress=False)
     time.sleep(0.05)
-    bob = _desk(tmp_path, "bob", place.group(readonly=True))
+    member_b = _desk(tmp_path, "member_b", place.group(readonly=True))
     created = _created(tap)
-    assert bob.submit(tap.url, _query(33), max_age=0.01).record["layer"] == "personal"
-    assert bob.submit(tap.url, _query(34), refresh=True).record["layer"] == "personal"
+    assert member_b.submit(tap.url, _query(33), max_age=0.01).record["layer"] == "personal"
+    assert member_b.submit(tap.url, _query(34), refresh=True).record["layer"] == "personal"
     assert _created(tap) == created + 2
 
 
@@ -151,28 +151,28 @@ def test_max_age_and_refresh_skip_old_group_results(tap, tmp_path, place):
 
 
 def _published(tap, tmp_path, place, n):
-    alice = _desk(tmp_path, "alice", place.group(readonly=False))
-    job = alice.submit(tap.url, _query(n)).wait(progress=False)
+    member_a = _desk(tmp_path, "member_a", place.group(readonly=False))
+    job = member_a.submit(tap.url, _query(n)).wait(progress=False)
     (rel,) = place.manifests()
     return job, rel
 
 
 def _refetches(tap, tmp_path, place, n, *, expect: str, readonly: bool = False):
-    bob = _desk(tmp_path, "bob", place.group(readonly=readonly))
+    member_b = _desk(tmp_path, "member_b", place.group(readonly=readonly))
     created = _created(tap)
     with pytest.warns(GroupCacheWarning, match=expect) as seen:
-        job = bob.submit(tap.url, _query(n))
+        job = member_b.submit(tap.url, _query(n))
     assert job.record["layer"] == "personal"
     assert job.wait(progress=False).rows == n and len(job.table()) == n
     assert _created(tap) == created + 1, "the next submit went to the service"
-    return bob, job, [str(w.message) for w in seen]
+    return member_b, job, [str(w.message) for w in seen]
 
 
 def test_flipped_byte_in_an_object_is_quarantined_and_refetched(tap, tmp_path, place):
     job, _ = _published(tap, tmp_path, place, 60)
     obj = layout.object_path(job.record["parquet_sha256"])
     place.flip_byte(obj)
-    bob, again, messages = _refetches(tap, tmp_path, place, 60,
+    member_b, again, messages = _refetches(tap, tmp_path, place, 60,
                                       expect="does not match its checksum")
     assert any(place.location in m and obj in m for m in messages), "the path is reported"
     assert not place.storage.exists(obj), "set aside, never served again"
@@ -189,9 +189,9 @@ def test_read_only_member_notes_corruption_locally(tap, tmp_path, place):
     job, _ = _published(tap, tmp_path, place, 61)
     obj = layout.object_path(job.record["result_sha256"])
     place.flip_byte(obj, at=7)
-    bob, _, _ = _refetches(tap, tmp_path, place, 61, expect="does not match", readonly=True)
+    member_b, _, _ = _refetches(tap, tmp_path, place, 61, expect="does not match", readonly=True)
     assert place.storage.exists(obj), "a read-only member moves nothing"
-    notes = (tmp_path / "bob" / "group-state" / "quarantine.jsonl").read_text().splitlines()
+    notes = (tmp_path / "member_b" / "group-state" / "quarantine.jsonl").read_text().splitlines()
     assert json.loads(notes[0])["path"].endswith(obj)
 
 
@@ -210,7 +210,7 @@ def test_manifest_pointing_at_a_missing_object_is_not_served(tap, tmp_path, plac
     report = maintain.verify(GroupLayer(place.group(readonly=True)))
     assert report.manifests == 2
     if again.record["result_sha256"] == job.record["result_sha256"]:
-        assert report.problems == []   # bob's publish put the same bytes back
+        assert report.problems == []   # member_b's publish put the same bytes back
     else:
         assert len(report.problems) == 1 and "is missing" in report.problems[0]
 
@@ -227,18 +227,18 @@ def test_manifest_claiming_overflow_or_newer_format_is_never_served(tap, tmp_pat
 
 
 def test_group_listing_in_the_index_fetches_verified_on_first_use(tap, tmp_path, place):
-    alice = _desk(tmp_path, "alice", place.group(readonly=False))
-    good = alice.submit(tap.url, _query(65)).wait(progress=False)
-    alice.submit(tap.url, _query(66)).wait(progress=False)
-    bob = _desk(tmp_path, "bob", place.group(readonly=True))
-    added = bob.groups.rebuild_index(bob.index)
-    assert added == 2 and bob.groups.rebuild_index(bob.index) == 0   # idempotent
-    assert {j.record["layer"] for j in bob.jobs()} == {"lab"}
+    member_a = _desk(tmp_path, "member_a", place.group(readonly=False))
+    good = member_a.submit(tap.url, _query(65)).wait(progress=False)
+    member_a.submit(tap.url, _query(66)).wait(progress=False)
+    member_b = _desk(tmp_path, "member_b", place.group(readonly=True))
+    added = member_b.groups.rebuild_index(member_b.index)
+    assert added == 2 and member_b.groups.rebuild_index(member_b.index) == 0   # idempotent
+    assert {j.record["layer"] for j in member_b.jobs()} == {"lab"}
     before = _requests(tap)
-    job = bob.submit(tap.url, _query(65))
-    assert job.id in {j.id for j in bob.jobs()} and _requests(tap) == before
+    job = member_b.submit(tap.url, _query(65))
+    assert job.id in {j.id for j in member_b.jobs()} and _requests(tap) == before
     assert list(job.table()["source_id"]) == list(good.table()["source_id"])
-    assert bob.store.verify(job.record["parquet_sha256"])
+    assert member_b.store.verify(job.record["parquet_sha256"])
 
 
 # --- in-flight sharing --------------------------------------------------------------------------
@@ -247,13 +247,13 @@ def test_group_listing_in_the_index_fetches_verified_on_first_use(tap, tmp_path,
 def test_identical_submission_joins_a_running_job_announced_in_the_group(tmp_path, place):
     from jobdesk.localtap import serve
     with serve(state=tmp_path / "slow-tap", rows=500, exec_delay=1.5) as slow:
-        alice = _desk(tmp_path, "alice", place.group(readonly=False))
-        running = alice.submit(slow.url, _query(90))
+        member_a = _desk(tmp_path, "member_a", place.group(readonly=False))
+        running = member_a.submit(slow.url, _query(90))
         assert running.record["job_url"]
         (claim,) = place.files(layout.CLAIMS)
         assert json.loads(place.storage.read(claim))["job_url"] == running.record["job_url"]
-        bob = _desk(tmp_path, "bob", place.group(readonly=False))
-        joined = bob.submit(slow.url, _query(90))
+        member_b = _desk(tmp_path, "member_b", place.group(readonly=False))
+        joined = member_b.submit(slow.url, _query(90))
         assert joined.record["job_url"] == running.record["job_url"]
         assert joined.wait(progress=False).rows == 90
         assert running.wait(progress=False).rows == 90
@@ -269,7 +269,7 @@ def test_stale_claim_is_ignored(tap, tmp_path, place):
              "heartbeat": time.time() - layout.DEFAULT_CLAIM_STALE - 5}
     place.storage.put_bytes(layout.claim_path(key_job.key), json.dumps(stale).encode())
     created = _created(tap)
-    job = _desk(tmp_path, "bob", place.group(readonly=False)).submit(tap.url, _query(91))
+    job = _desk(tmp_path, "member_b", place.group(readonly=False)).submit(tap.url, _query(91))
     assert job.record["job_url"] != stale["job_url"]
     assert job.wait(progress=False).rows == 91 and _created(tap) == created + 1
 
@@ -278,8 +278,8 @@ def test_stale_claim_is_ignored(tap, tmp_path, place):
 
 
 def test_prune_dry_run_then_real_keeps_everything_a_manifest_references(tap, tmp_path, place):
-    alice = _desk(tmp_path, "alice", place.group(readonly=False))
-    kept = alice.submit(tap.url, _query(70)).wait(progress=False)
+    member_a = _desk(tmp_path, "member_a", place.group(readonly=False))
+    kept = member_a.submit(tap.url, _query(70)).wait(progress=False)
     layer = GroupLayer(place.group(readonly=False))
     orphan = layout.object_path("0" * 64)
     place.storage.put_bytes(orphan, b"no manifest names this")
@@ -297,9 +297,9 @@ def test_prune_dry_run_then_real_keeps_everything_a_manifest_references(tap, tmp
 
 
 def test_verify_reports_every_kind_of_damage(tap, tmp_path, place):
-    alice = _desk(tmp_path, "alice", place.group(readonly=False))
-    one = alice.submit(tap.url, _query(71)).wait(progress=False)
-    alice.submit(tap.url, _query(72)).wait(progress=False)
+    member_a = _desk(tmp_path, "member_a", place.group(readonly=False))
+    one = member_a.submit(tap.url, _query(71)).wait(progress=False)
+    member_a.submit(tap.url, _query(72)).wait(progress=False)
     layer = GroupLayer(place.group(readonly=True))
     assert maintain.verify(layer).problems == []
     first, second = place.manifests()
@@ -323,9 +323,9 @@ def test_config_file_and_command_line(tap, tmp_path, capsys):
     from jobdesk.cli import main
     group_dir = tmp_path / "shared"
     assert main(["group", "init", str(group_dir), "--name", "lab"]) == 0
-    alice = Desk(tmp_path / "alice", groups=[str(group_dir)], wait_window=5)
-    alice.submit(tap.url, _query(80)).wait(progress=False)
-    root = tmp_path / "bob"
+    member_a = Desk(tmp_path / "member_a", groups=[str(group_dir)], wait_window=5)
+    member_a.submit(tap.url, _query(80)).wait(progress=False)
+    root = tmp_path / "member_b"
     root.mkdir()
     (root / "config.toml").write_text(f'[[groups]]\nlocation = "{group_dir}"\nreadonly = true\n')
     assert Desk(root).groups.names == ["lab"]

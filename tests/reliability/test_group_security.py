@@ -32,22 +32,22 @@ def tap(tmp_path_factory):
 
 
 def published(tap, tmp_path, n: int):
-    """Alice runs a query with the group writable: the result is published there."""
+    """Member A runs a query with the group writable: the result is published there."""
     group = tmp_path / "group"
-    alice = Desk(tmp_path / "alice", groups=[str(group)], wait_window=2)
-    job = alice.submit(tap.url, QUERY.format(n=n)).wait(progress=False)
+    member_a = Desk(tmp_path / "member_a", groups=[str(group)], wait_window=2)
+    job = member_a.submit(tap.url, QUERY.format(n=n)).wait(progress=False)
     return group, job
 
 
 def colleague(tap, tmp_path, group, n: int, root: Path | None = None):
-    """Bob (read-only member) asks the same: served from the group, or run on the service."""
-    bob = Desk(root or tmp_path / "bob", groups=[Group(str(group), readonly=True)], wait_window=2)
+    """Member B (read-only) asks the same: served from the group, or run on the service."""
+    member_b = Desk(root or tmp_path / "member_b", groups=[Group(str(group), readonly=True)], wait_window=2)
     created = tap.stats()["jobs_created"]
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        job = bob.submit(tap.url, QUERY.format(n=n)).wait(progress=False)
+        job = member_b.submit(tap.url, QUERY.format(n=n)).wait(progress=False)
     went_to_service = tap.stats()["jobs_created"] == created + 1
-    return bob, job, went_to_service
+    return member_b, job, went_to_service
 
 
 def test_group_files_honour_the_permission_policy(tap, tmp_path, figures):
@@ -63,7 +63,7 @@ def test_group_files_honour_the_permission_policy(tap, tmp_path, figures):
                 assert mode & stat.S_IRGRP and mode & stat.S_IXGRP
             else:
                 assert mode & stat.S_IRGRP, f"{path} is not group-readable"
-        for path in (tmp_path / "alice" / "objects").rglob("*"):
+        for path in (tmp_path / "member_a" / "objects").rglob("*"):
             assert not path.lstat().st_mode & stat.S_IWOTH, f"{path} is world-writable"
 
 
@@ -75,10 +75,10 @@ def test_object_with_a_bad_checksum_is_never_served(tap, tmp_path, figures):
         data[100] ^= 0xFF
         os.chmod(obj, 0o644)
         obj.write_bytes(bytes(data))
-        bob, served, went = colleague(tap, tmp_path, group, 32)
+        member_b, served, went = colleague(tap, tmp_path, group, 32)
         assert went, "the bad object was not served: the service answered"
         assert served.record["layer"] == "personal"
-        assert bob.store.verify(served.record["parquet_sha256"])
+        assert member_b.store.verify(served.record["parquet_sha256"])
 
 
 def test_manifest_naming_a_path_is_rejected(tap, tmp_path, figures):
@@ -90,7 +90,7 @@ def test_manifest_naming_a_path_is_rejected(tap, tmp_path, figures):
             doc["objects"][role]["sha256"] = "../../../../../../etc/passwd"
         os.chmod(manifest, 0o644)
         manifest.write_text(json.dumps(doc))
-        bob, served, went = colleague(tap, tmp_path, group, 33)
+        member_b, served, went = colleague(tap, tmp_path, group, 33)
         assert went and served.record["layer"] == "personal"
 
 
@@ -109,7 +109,7 @@ def test_object_linked_out_of_the_group_is_not_read(tap, tmp_path, figures):
     outside.write_bytes((group / layout.object_path(sha)).read_bytes())
     with figures.case("security", "group cache: object linked out of the group"):
         _link_out(group, sha, outside)
-        bob, served, went = colleague(tap, tmp_path, group, 34)
+        member_b, served, went = colleague(tap, tmp_path, group, 34)
         assert went and served.record["layer"] == "personal", "served through a link out"
         assert outside.exists(), "the file outside the group is left alone"
 
@@ -139,8 +139,8 @@ def test_oversized_group_object_never_breaks_a_colleagues_submit(tap, tmp_path, 
         fh.write(b"\0" * (8 << 20))  # 8 MiB more than the manifest says, on a 3 MiB disk
     with figures.case("security", "group cache: oversized object on a small disk"):
         try:
-            bob, served, went = colleague(tap, tmp_path, group, 35, root=small_disk / "bob")
+            member_b, served, went = colleague(tap, tmp_path, group, 35, root=small_disk / "member_b")
         except JobdeskError as exc:
             pytest.fail(f"a group object broke the colleague's submit: {exc!r}")
         assert went and served.record["layer"] == "personal"
-        assert not list((small_disk / "bob" / "tmp").iterdir()), "the partial copy is gone"
+        assert not list((small_disk / "member_b" / "tmp").iterdir()), "the partial copy is gone"
