@@ -21,10 +21,9 @@ import platformdirs
 from jobdesk import keys, phases, provenance, results
 from jobdesk import uploads as upload_tables
 from jobdesk.errors import (
-    BadServiceURL, CacheCorrupt, GroupCacheWarning, JobAborted, JobdeskError, JobFailed, JobLost, QueryRejected, ResultTruncated,
-    ResultUnavailable, ServiceRefused, ServiceResponseInvalid, ServiceUnreachable,
-    TruncatedResultWarning, NotRepeatableWarning,
-    WaitTimeout,
+    BadServiceURL, CacheCorrupt, GroupCacheWarning, JobAborted, JobdeskError, JobFailed, JobLost,
+    NotRepeatableWarning, QueryRejected, ResultTruncated, ResultUnavailable, ServiceRefused,
+    ServiceResponseInvalid, ServiceUnreachable, TruncatedResultWarning, WaitTimeout,
 )
 from jobdesk.groups import GroupCaches
 from jobdesk.index import Index, this_process
