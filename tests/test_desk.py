@@ -7,13 +7,10 @@ from __future__ import annotations
 
 import json
 import multiprocessing as mp
-import os
 import signal
 import subprocess
 import sys
 import time
-import warnings
-from pathlib import Path
 
 import numpy as np
 import pytest

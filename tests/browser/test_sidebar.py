@@ -118,7 +118,7 @@ def test_the_whole_story(lab, page, taps, tmp_path):
     assert shot.stat().st_size > 5_000
 
     # Insert the snippet into the open notebook and run it with the notebook's kernel.
-    page.locator(f'.jp-SideBar [data-id="jobdesk-sidebar"]').wait_for()
+    page.locator('.jp-SideBar [data-id="jobdesk-sidebar"]').wait_for()
     page.get_by_role("tab", name=NOTEBOOK).first.click()
     row(page, done.id).hover()
     row(page, done.id).get_by_role("button", name="Insert").click()

@@ -14,7 +14,6 @@ import time
 import traceback
 from pathlib import Path
 
-import pytest
 
 from jobdesk import Desk, phases
 from jobdesk.localtap import spawn

@@ -22,7 +22,7 @@ from astropy.io.votable import parse_single_table
 
 from jobdesk import Desk, phases
 from jobdesk.errors import (
-    JobdeskError, JobFailed, JobLost, ServiceError, ServiceRefused, ServiceUnreachable,
+    JobdeskError, JobFailed, JobLost, ServiceError, ServiceUnreachable,
     StorageFull,
 )
 from jobdesk.localtap import serve, spawn

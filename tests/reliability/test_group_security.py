@@ -17,7 +17,7 @@ from pathlib import Path
 
 import pytest
 
-from jobdesk import Desk, Group, phases
+from jobdesk import Desk, Group
 from jobdesk.errors import JobdeskError
 from jobdesk.groups import layout
 from jobdesk.localtap import serve

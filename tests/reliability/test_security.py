@@ -11,14 +11,12 @@ from __future__ import annotations
 import base64
 import hashlib
 import logging
-import os
 import traceback
 from pathlib import Path
 
 import pytest
 import requests
 
-import jobdesk.desk as desk_module
 from jobdesk import Desk, phases
 from jobdesk.errors import CacheCorrupt, JobdeskError
 from jobdesk.index import Index
