@@ -81,6 +81,15 @@ start_postgres() {
 }
 
 # --- 1. packages: PostgreSQL first (DaCHS's post-install needs a running database) ---------
+# Debian 12's pgSphere 1.1.1 cannot be created on PostgreSQL 15.19 or later ("commutator
+# operator @> is already the commutator of operator <@", measured here with 15.20 from the
+# security suite), and installing DaCHS would pull that upgrade in. Keep PostgreSQL at the
+# release suite's version (15.18, what this machine image carries).
+cat > /etc/apt/preferences.d/jobdesk-interop-postgresql <<'PIN'
+Package: postgresql-15 postgresql-client-15
+Pin: release l=Debian-Security
+Pin-Priority: -1
+PIN
 if write_gavo_rc; then touch "$STATE_DIR/config-changed"; fi
 if ! command -v pg_ctlcluster >/dev/null || [[ -z "$(pg_cluster)" ]]; then
     apt_install postgresql
