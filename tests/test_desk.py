@@ -105,24 +105,28 @@ def test_killed_kernel_job_is_reattached_not_resubmitted(tmp_path):
         assert _created(tap) == 1, "no second server job"
 
 
-def _submit_at(root, url, query, start, out):
-    while time.time() < start:
-        time.sleep(0.001)
-    out.put(Desk(root).submit(url, query).id)
+def _submit_at(root, url, query, ready, go, out):
+    desk = Desk(root)     # opened before the signal, so that the submissions really race
+    ready.put(True)
+    go.wait(60)
+    out.put(desk.submit(url, query).id)
 
 
 def test_two_kernels_at_once_share_one_server_job(tmp_path):
     with serve(state=tmp_path / "tap", rows=ROWS, exec_delay=0.5) as tap:
         root = tmp_path / "desk"
         Desk(root)
-        ctx = mp.get_context("fork")
-        out = ctx.Queue()
-        start = time.time() + 1.0
-        procs = [ctx.Process(target=_submit_at, args=(root, tap.url, CONE, start, out))
+        # spawn, not fork: this process runs the service's threads, and a fork copies their locks
+        ctx = mp.get_context("spawn")
+        ready, go, out = ctx.Queue(), ctx.Event(), ctx.Queue()
+        procs = [ctx.Process(target=_submit_at, args=(root, tap.url, CONE, ready, go, out))
                  for _ in range(4)]
         for p in procs:
             p.start()
-        ids = {out.get(timeout=60) for _ in procs}
+        for _ in procs:
+            ready.get(timeout=120)
+        go.set()
+        ids = {out.get(timeout=120) for _ in procs}
         for p in procs:
             p.join(30)
         assert len(ids) == 1

@@ -27,9 +27,9 @@ def _claim_many(path, key, n, out):
 def test_claim_is_atomic_across_processes(tmp_path):
     path = tmp_path / "index.sqlite"
     Index(path)
-    out = mp.get_context("fork").Queue()
-    procs = [mp.get_context("fork").Process(target=_claim_many, args=(path, "k1", 25, out))
-             for _ in range(6)]
+    ctx = mp.get_context("spawn")  # a fork would copy whatever locks other threads hold
+    out = ctx.Queue()
+    procs = [ctx.Process(target=_claim_many, args=(path, "k1", 25, out)) for _ in range(6)]
     for p in procs:
         p.start()
     got = [out.get(timeout=60) for _ in range(150)]
