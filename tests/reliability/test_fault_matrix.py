@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import itertools
 import shutil
-import subprocess
 import threading
 import time
 from pathlib import Path
@@ -318,21 +317,6 @@ def test_service_restarting_mid_job(tmp_path, figures):
 
 
 # --- a full disk ----------------------------------------------------------------------------------
-
-
-@pytest.fixture
-def small_disk(tmp_path):
-    """A real 3 MiB tmpfs (needs root; skipped with the reason otherwise)."""
-    mount = tmp_path / "disk"
-    mount.mkdir()
-    done = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=3m", "tmpfs", str(mount)],
-                          capture_output=True, text=True)
-    if done.returncode != 0:
-        pytest.skip(f"cannot mount a tmpfs here: {done.stderr.strip()}")
-    try:
-        yield mount
-    finally:
-        subprocess.run(["umount", "-l", str(mount)], check=False)
 
 
 def fill(disk: Path, leave: int) -> Path:

@@ -11,7 +11,6 @@ from __future__ import annotations
 import json
 import os
 import stat
-import subprocess
 import warnings
 from pathlib import Path
 
@@ -112,20 +111,6 @@ def test_object_linked_out_of_the_group_is_not_read(tap, tmp_path, figures):
         member_b, served, went = colleague(tap, tmp_path, group, 34)
         assert went and served.record["layer"] == "personal", "served through a link out"
         assert outside.exists(), "the file outside the group is left alone"
-
-
-@pytest.fixture
-def small_disk(tmp_path):
-    mount = tmp_path / "disk"
-    mount.mkdir()
-    done = subprocess.run(["mount", "-t", "tmpfs", "-o", "size=3m", "tmpfs", str(mount)],
-                          capture_output=True, text=True)
-    if done.returncode != 0:
-        pytest.skip(f"cannot mount a tmpfs here: {done.stderr.strip()}")
-    try:
-        yield mount
-    finally:
-        subprocess.run(["umount", "-l", str(mount)], check=False)
 
 
 def test_oversized_group_object_never_breaks_a_colleagues_submit(tap, tmp_path, small_disk,
