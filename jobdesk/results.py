@@ -519,25 +519,24 @@ class _Reader:
         self.text.append(text)
 
     def expat_start(self, tag: str, attr_list: list[str]) -> None:
-        """The same as :meth:`start`, called by expat directly (attributes as a flat list)."""
+        """The same as :meth:`start`, called by expat directly (attributes as a flat list);
+        cells skip building an attribute dict, which is most of the time on TABLEDATA."""
         if self.mode == "td":
-            if tag == self.td:
-                self.text.clear()
-            elif tag == self.tr:
-                self.row_start = len(self.cells)
-            else:
-                raise ServiceResponseInvalid(f"unexpected <{_local(tag)}> inside TABLEDATA")
+            self._cell_start(tag)
             return
         self.start(tag, dict(zip(attr_list[::2], attr_list[1::2])))
 
+    def _cell_start(self, tag: str) -> None:
+        if tag == self.td:
+            self.text.clear()
+        elif tag == self.tr:
+            self.row_start = len(self.cells)
+        else:
+            raise ServiceResponseInvalid(f"unexpected <{_local(tag)}> inside TABLEDATA")
+
     def start(self, tag: str, attrib: dict[str, str]) -> None:
         if self.mode == "td":
-            if tag == self.td:
-                self.text.clear()
-            elif tag == self.tr:
-                self.row_start = len(self.cells)
-            else:
-                raise ServiceResponseInvalid(f"unexpected <{_local(tag)}> inside TABLEDATA")
+            self._cell_start(tag)
             return
         self.text.clear()
         name = _local(tag)
