@@ -24,7 +24,7 @@ SERVICES = ("http://127.0.0.1:8787/tap", "https://tap.example.org/tap",
             "https://archive.example.net/vo/tap", "https://data.example.edu/tap")
 PHASES = (("COMPLETED", 0.82), ("ERROR", 0.10), ("ABORTED", 0.05), ("LOST", 0.03))
 HIT_SERVICE = SERVICES[1]
-HIT_ADQL = ("SELECT s.source_id, s.ra, s.dec, s.mag_cyan FROM orrery.sources AS s "
+HIT_ADQL = ("SELECT s.orrery_id, s.ra, s.dec, s.mag_cyan FROM orrery.sources AS s "
             "WHERE 1 = CONTAINS(POINT('ICRS', s.ra, s.dec), CIRCLE('ICRS', 10.0, -30.0, 0.25))")
 RARE_WORD = "pilot"   # in about 1 % of the labels: a filter that must look at every row
 
@@ -33,11 +33,11 @@ def _adql(rng: random.Random) -> str:
     ra, dec, r = rng.uniform(0, 360), rng.uniform(-90, 90), rng.choice((0.05, 0.1, 0.5, 1.0))
     kind = rng.random()
     if kind < 0.5:
-        return (f"SELECT source_id, ra, dec, mag_cyan, mag_rose FROM orrery.sources WHERE "
+        return (f"SELECT orrery_id, ra, dec, mag_cyan, mag_rose FROM orrery.sources WHERE "
                 f"1 = CONTAINS(POINT('ICRS', ra, dec), CIRCLE('ICRS', {ra:.5f}, {dec:.5f}, {r}))")
     if kind < 0.8:
-        return (f"SELECT s.source_id, e.obs_time, e.mag, e.band FROM orrery.sources AS s "
-                f"JOIN orrery.epochs AS e ON e.source_id = s.source_id "
+        return (f"SELECT s.orrery_id, e.obs_time, e.mag, e.band FROM orrery.sources AS s "
+                f"JOIN orrery.visits AS e ON e.orrery_id = s.orrery_id "
                 f"WHERE s.mag_lime < {rng.uniform(12, 20):.2f} AND e.band = "
                 f"'{rng.choice(('cyan', 'lime', 'rose'))}' AND 1 = CONTAINS(POINT('ICRS', s.ra, "
                 f"s.dec), BOX('ICRS', {ra:.4f}, {dec:.4f}, {r * 2}, {r}))\nORDER BY e.obs_time")
@@ -57,7 +57,7 @@ def seed(root: Path, jobs: int, *, seed_value: int = 20240601) -> dict:
     store = Store(root)
     # One real cached result, for the cache-hit submit.
     tmp = store.temp(".parquet")
-    pq.write_table(pa.table({"source_id": pa.array(range(500), pa.int64()),
+    pq.write_table(pa.table({"orrery_id": pa.array(range(500), pa.int64()),
                              "ra": pa.array([rng.uniform(9, 11) for _ in range(500)])}), tmp)
     parquet_sha, parquet_path = store.commit(tmp)
     hit_key = keys.query_key(HIT_SERVICE, HIT_ADQL, maxrec=None, fmt="votable", uploads={},
@@ -101,7 +101,7 @@ def seed(root: Path, jobs: int, *, seed_value: int = 20240601) -> dict:
                           parquet_sha256=parquet_sha, parquet_stat=stat_stamp(parquet_path))
             hit_id = job_id
         job_rows.append([record[n] for n in names])
-        for name, at in (("LOCAL", created), ("SUBMITTED", submitted), ("EXECUTING", started),
+        for name, at in (("UNSENT", created), ("SUBMITTED", submitted), ("EXECUTING", started),
                          (record["phase"], finished)):
             phase_rows.append((job_id, name, at, None))
     with index._write() as conn:

@@ -16,7 +16,7 @@ from astropy.table import MaskedColumn, Table
 from benchmarks.common import CaseResult, Context, Row, faster, median, repeat, timed
 from jobdesk import Desk
 
-COLUMNS = ("source_id, ra, dec, pmra, pmdec, parallax, mag_cyan, mag_lime, mag_rose, "
+COLUMNS = ("orrery_id, ra, dec, pm_ra_cosdec, pm_dec, parallax, mag_cyan, mag_lime, mag_rose, "
            "class_label")
 ADQL = f"SELECT {COLUMNS} FROM orrery.sources"
 

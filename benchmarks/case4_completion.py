@@ -42,8 +42,8 @@ def plan(ctx: Context) -> dict[int, int]:
 
 
 def query(n: int) -> str:
-    return (f"SELECT TOP 5 source_id, ra, dec FROM orrery.sources WHERE source_id > {n} "
-            f"ORDER BY source_id")
+    return (f"SELECT TOP 5 orrery_id, ra, dec FROM orrery.sources WHERE orrery_id > {n} "
+            f"ORDER BY orrery_id")
 
 
 def jobdesk_client(ctx: Context, url: str, tag: str, n: int) -> dict:

@@ -31,37 +31,37 @@ def realistic_adql(rng: random.Random) -> str:
     band = rng.choice(("cyan", "lime", "rose"))
     return f"""-- light curves of bright, nearby candidates in field {rng.randint(1, 9999)}
 WITH bright AS (
-    SELECT s.source_id, s.ra, s.dec, s.parallax, s.parallax_error, s.pmra, s.pmdec,
+    SELECT s.orrery_id, s.ra, s.dec, s.parallax, s.parallax_sigma, s.pm_ra_cosdec, s.pm_dec,
            s.mag_cyan, s.mag_lime, s.mag_rose, s.cyan_rose, s.class_label
     FROM orrery.sources AS s
     WHERE 1 = CONTAINS(POINT('ICRS', s.ra, s.dec),
                        POLYGON('ICRS', {vertices}))
       AND s.mag_lime < {mag:.3f}
-      AND s.parallax_error < 0.2 * s.parallax
+      AND s.parallax_sigma < 0.2 * s.parallax
       AND (s.class_label = 'star' OR s.class_label IS NULL)
 )
-SELECT b.source_id, b.ra, b.dec, b.parallax,
+SELECT b.orrery_id, b.ra, b.dec, b.parallax,
        1000.0 / b.parallax AS distance_pc,
-       SQRT(POWER(b.pmra, 2) + POWER(b.pmdec, 2)) AS total_pm,
+       SQRT(POWER(b.pm_ra_cosdec, 2) + POWER(b.pm_dec, 2)) AS total_pm,
        DISTANCE(POINT('ICRS', b.ra, b.dec), POINT('ICRS', {ra:.6f}, {dec:.6f})) AS sep_deg,
        CASE WHEN b.cyan_rose < 0.5 THEN 'blue' WHEN b.cyan_rose < 1.5 THEN 'mid'
             ELSE 'red' END AS colour_class,
-       e.epoch_id, e.obs_time, e.band, e.mag, e.mag_err,
+       e.visit_id, e.obs_time, e.band, e.mag, e.mag_sigma,
        e.mag - b.mag_{band} AS delta_mag,
-       ROUND(e.mag - e.mag_err, 3) AS mag_bright, ROUND(e.mag + e.mag_err, 3) AS mag_faint,
+       ROUND(e.mag - e.mag_sigma, 3) AS mag_bright, ROUND(e.mag + e.mag_sigma, 3) AS mag_faint,
        COORD1(POINT('ICRS', b.ra, b.dec)) AS lon, COORD2(POINT('ICRS', b.ra, b.dec)) AS lat,
        CASE WHEN b.parallax > 10 THEN 'near' WHEN b.parallax > 1 THEN 'mid' ELSE 'far' END
            AS distance_class,
-       LOG10(b.parallax) + 2 * ABS(b.pmdec) / (1 + ABS(b.pmra)) AS figure_of_merit
+       LOG10(b.parallax) + 2 * ABS(b.pm_dec) / (1 + ABS(b.pm_ra_cosdec)) AS figure_of_merit
 FROM bright AS b
-INNER JOIN orrery.epochs AS e ON e.source_id = b.source_id
+INNER JOIN orrery.visits AS e ON e.orrery_id = b.orrery_id
 WHERE e.band = '{band}'
-  AND e.mag_err < {rng.uniform(0.01, 0.2):.4f}
+  AND e.mag_sigma < {rng.uniform(0.01, 0.2):.4f}
   AND e.obs_time BETWEEN {rng.uniform(58000, 59000):.3f} AND {rng.uniform(59500, 60500):.3f}
   AND 1 = CONTAINS(POINT('ICRS', b.ra, b.dec), CIRCLE('ICRS', {ra:.6f}, {dec:.6f}, 1.5))
-  AND b.source_id IN (SELECT x.source_id FROM orrery.epochs AS x
-                      GROUP BY x.source_id HAVING COUNT(*) >= {rng.randint(2, 4)})
-ORDER BY b.source_id, e.obs_time  -- oldest first
+  AND b.orrery_id IN (SELECT x.orrery_id FROM orrery.visits AS x
+                      GROUP BY x.orrery_id HAVING COUNT(*) >= {rng.randint(2, 4)})
+ORDER BY b.orrery_id, e.obs_time  -- oldest first
 """
 
 

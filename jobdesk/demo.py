@@ -19,26 +19,26 @@ from jobdesk.desk import Desk
 from jobdesk.errors import JobdeskError, ResultTruncated, TruncatedResultWarning
 
 CONE = """\
-SELECT source_id, ra, dec, mag_lime, parallax
+SELECT orrery_id, ra, dec, mag_lime, parallax
 FROM orrery.sources
 WHERE 1 = CONTAINS(POINT('ICRS', ra, dec), CIRCLE('ICRS', 150.0, 20.0, 12.0))
-ORDER BY source_id"""
+ORDER BY orrery_id"""
 
 SLOW = """\
-SELECT s.source_id, s.ra, s.dec, count(*) AS n_epochs
-FROM orrery.sources AS s JOIN orrery.epochs AS e ON e.source_id = s.source_id
+SELECT s.orrery_id, s.ra, s.dec, count(*) AS n_epochs
+FROM orrery.sources AS s JOIN orrery.visits AS e ON e.orrery_id = s.orrery_id
 WHERE s.dec > 60
-GROUP BY s.source_id, s.ra, s.dec
-ORDER BY s.source_id"""
+GROUP BY s.orrery_id, s.ra, s.dec
+ORDER BY s.orrery_id"""
 
-BIG = "SELECT source_id, ra, dec FROM orrery.sources ORDER BY source_id"
+BIG = "SELECT orrery_id, ra, dec FROM orrery.sources ORDER BY orrery_id"
 
-BAD = "SELECT source_id, ra, dec FORM orrery.sources"
+BAD = "SELECT orrery_id, ra, dec FORM orrery.sources"
 
 _KILLED_KERNEL = """
 import sys
 from jobdesk import Desk
-job = Desk(sys.argv[1]).submit(sys.argv[2], sys.argv[3], label="north cap epochs")
+job = Desk(sys.argv[1]).submit(sys.argv[2], sys.argv[3], label="north cap visits")
 print(job.id, flush=True)
 job.wait(progress=False)
 """
@@ -79,7 +79,7 @@ def run(root=None, rows: int = 20000) -> int:
         child.kill()
         child.wait()
         print(f"   killed the process that submitted job {first_id}")
-        again = desk.submit(url, SLOW, label="north cap epochs")
+        again = desk.submit(url, SLOW, label="north cap visits")
         again.wait()
         created = tap.stats()["jobs_created"] - before
         print(f"   re-submitted: job {again.id} (same record: {again.id == first_id}); "

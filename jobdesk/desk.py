@@ -130,7 +130,7 @@ class Desk:
         fields = {
             "id": job_id, "service": sid, "adql": adql, "canonical": canonical.text,
             "maxrec": maxrec, "fmt": fmt, "label": label, "scope": scope, "uploads": digests,
-            "phase": phases.LOCAL, "run_id": f"jobdesk-{job_id}",
+            "phase": phases.UNSENT, "run_id": f"jobdesk-{job_id}",
             "notebook": os.environ.get("JPY_SESSION_NAME"), "user": provenance.current_user(),
             "host": socket.gethostname(), "warnings": list(canonical.warnings),
             "layer": "personal", "requests": 0,
@@ -301,8 +301,8 @@ class Desk:
         advanced = 0
         for record in self.index.unfinished(service=service):
             try:
-                if record["phase"] == phases.LOCAL:
-                    advanced += self._try_start(record, owner=owner)["phase"] != phases.LOCAL
+                if record["phase"] == phases.UNSENT:
+                    advanced += self._try_start(record, owner=owner)["phase"] != phases.UNSENT
                 elif self.index.take_lease(record["id"], owner, LEASE_SECONDS):
                     try:
                         self._drive(record, deadline=None, once=True)
@@ -334,7 +334,7 @@ class Desk:
         return Remote(service, self._sessions.get(service, self.session), **self._remote_options)
 
     def _try_start(self, record: dict, *, owner: str | None = None) -> dict:
-        """Create a LOCAL job on its service if the per-service limit lets it start now."""
+        """Create an UNSENT job on its service if the per-service limit lets it start now."""
         owner = owner or self.owner
         job_id = record["id"]
         limit = self.limits.get(record["service"], DEFAULT_RUNNING_LIMIT)
@@ -580,8 +580,8 @@ class Job:
                 if deadline is not None:
                     slice_end = min(slice_end, deadline)
                 try:
-                    if record["phase"] == phases.LOCAL:
-                        if self.desk._try_start(record)["phase"] == phases.LOCAL:
+                    if record["phase"] == phases.UNSENT:
+                        if self.desk._try_start(record)["phase"] == phases.UNSENT:
                             self.desk.step(service=record["service"])
                             _sleep_until(slice_end, 0.5)
                     elif self.desk.index.take_lease(self.id, self.desk.owner, LEASE_SECONDS):

@@ -79,6 +79,14 @@ def _v2_to_v3(db: sqlite_utils.Database) -> None:
                "WHERE phase = 'COMPLETED' AND parquet_sha256 IS NULL")
 
 
+@_migration
+def _v3_to_v4(db: sqlite_utils.Database) -> None:
+    # Our own "not yet sent" phase was called LOCAL, a word that also named the local cache
+    # and the local service; it is UNSENT now, in the records and in their phase history.
+    db.execute("UPDATE jobs SET phase = 'UNSENT' WHERE phase = 'LOCAL'")
+    db.execute("UPDATE phases SET phase = 'UNSENT' WHERE phase = 'LOCAL'")
+
+
 SCHEMA_VERSION = len(MIGRATIONS)
 BUSY_TIMEOUT_MS = 30_000
 
@@ -301,16 +309,16 @@ class Index:
                          "WHERE id = ? AND owner = ?", [job_id, owner])
 
     def claim_start(self, job_id: str, *, limit: int | None, owner: str, seconds: float) -> bool:
-        """Take the lease to create a LOCAL job on its service, honouring the running limit.
+        """Take the lease to create an UNSENT job on its service, honouring the running limit.
 
         Jobs start in the order they were recorded: a job may start only while the number of
-        jobs already running on its service plus the older LOCAL jobs ahead of it is below
+        jobs already running on its service plus the older UNSENT jobs ahead of it is below
         ``limit``.
         """
         with self._write() as conn:
             row = conn.execute("SELECT service, phase, created, owner, lease_until FROM jobs "
                                "WHERE id = ?", [job_id]).fetchone()
-            if row is None or row[1] != phases.LOCAL:
+            if row is None or row[1] != phases.UNSENT:
                 return False
             service, _, created, holder, until = row
             now = time.time()
@@ -324,7 +332,7 @@ class Index:
                 ahead = conn.execute(
                     "SELECT count(*) FROM jobs WHERE service = ? AND phase = ? AND "
                     "(created < ? OR (created = ? AND id < ?))",
-                    [service, phases.LOCAL, created, created, job_id]).fetchone()[0]
+                    [service, phases.UNSENT, created, created, job_id]).fetchone()[0]
                 if running + ahead >= limit:
                     return False
             conn.execute("UPDATE jobs SET owner = ?, lease_until = ? WHERE id = ?",

@@ -1,6 +1,6 @@
 """Job phases: the UWS 1.1 ones (§2.1.3) plus the two that exist only on this side.
 
-A record starts ``LOCAL`` (waiting for a free slot under the per-service limit, or about to be
+A record starts ``UNSENT`` (waiting for a free slot under the per-service limit, or about to be
 created on the service) and becomes ``SUBMITTED`` once the service has given it a job URL; from
 then on it carries the phase the service reports.
 """
@@ -17,7 +17,7 @@ SUSPENDED = "SUSPENDED"
 ARCHIVED = "ARCHIVED"
 
 # Our own, never sent to a service.
-LOCAL = "LOCAL"          # recorded here, not yet created on the service
+UNSENT = "UNSENT"        # recorded here, not yet sent to the service (waiting for a slot)
 SUBMITTED = "SUBMITTED"  # created on the service, phase not yet read back
 LOST = "LOST"            # the service no longer knows the job and no result was saved
 
@@ -27,6 +27,6 @@ UWS_PHASES = (PENDING, QUEUED, EXECUTING, COMPLETED, ERROR, ABORTED, UNKNOWN, HE
 # Terminal for a client (UWS 1.1 §2.1.3): nothing more will happen on the service.
 TERMINAL = frozenset({COMPLETED, ERROR, ABORTED, ARCHIVED, LOST})
 # Still worth waiting for.
-ACTIVE = frozenset({LOCAL, SUBMITTED, PENDING, QUEUED, EXECUTING, UNKNOWN, HELD, SUSPENDED})
+ACTIVE = frozenset({UNSENT, SUBMITTED, PENDING, QUEUED, EXECUTING, UNKNOWN, HELD, SUSPENDED})
 # Holding one of the service's run slots.
 RUNNING = frozenset({SUBMITTED, QUEUED, EXECUTING, UNKNOWN, HELD, SUSPENDED})

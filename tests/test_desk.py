@@ -27,9 +27,9 @@ from jobdesk import phases
 from jobdesk.localtap import serve
 
 ROWS = 3000
-CONE = ("SELECT source_id, ra, dec, mag_lime, parallax FROM orrery.sources "
+CONE = ("SELECT orrery_id, ra, dec, mag_lime, parallax FROM orrery.sources "
         "WHERE 1 = CONTAINS(POINT('ICRS', ra, dec), CIRCLE('ICRS', 150.0, 20.0, 25.0)) "
-        "ORDER BY source_id")
+        "ORDER BY orrery_id")
 
 
 @pytest.fixture(scope="module")
@@ -64,14 +64,14 @@ def test_submit_wait_table_keeps_units_and_matches_pyvo(tap, desk):
     assert str(table["ra"].unit) == "deg" and table["ra"].description
     # Independent client: pyvo reading the same service must give the same rows.
     reference = pyvo.dal.TAPService(tap.url).run_sync(CONE).to_table()
-    assert list(table["source_id"]) == list(reference["source_id"])
+    assert list(table["orrery_id"]) == list(reference["orrery_id"])
     np.testing.assert_allclose(table["dec"], reference["dec"])
     # Independent geometry truth: astropy's separation (the cone radius is 25 deg).
     sep = SkyCoord(table["ra"], table["dec"], unit="deg").separation(
         SkyCoord(150.0, 20.0, unit="deg"))
     assert (sep <= 25 * u.deg).all()
     frame = job.frame()
-    assert list(frame["source_id"]) == list(table["source_id"])
+    assert list(frame["orrery_id"]) == list(table["orrery_id"])
 
 
 # --- [2] kernel restart and concurrent kernels share one server job --------------------------
@@ -88,7 +88,7 @@ job.wait(progress=False)
 def test_killed_kernel_job_is_reattached_not_resubmitted(tmp_path):
     with serve(state=tmp_path / "tap", rows=ROWS, exec_delay=3.0) as tap:
         root = tmp_path / "desk"
-        query = "SELECT TOP 5 source_id FROM orrery.sources ORDER BY source_id"
+        query = "SELECT TOP 5 orrery_id FROM orrery.sources ORDER BY orrery_id"
         child = subprocess.Popen([sys.executable, "-c", _KERNEL, str(root), tap.url, query],
                                  stdout=subprocess.PIPE, text=True)
         job_id = child.stdout.readline().strip()
@@ -145,11 +145,11 @@ def test_cache_hit_needs_no_service(tmp_path):
     # The service is gone (stopped, port closed): the same query is answered from the cache.
     with pytest.raises(requests.ConnectionError):
         requests.get(url + "/availability", timeout=2)
-    again = Desk(root).submit(url, "select SOURCE_ID, ra, dec, mag_lime, parallax\n"
+    again = Desk(root).submit(url, "select ORRERY_ID, ra, dec, mag_lime, parallax\n"
                               "from orrery.sources -- same query, other spelling of keywords\n"
                               "where 1 = contains(point('ICRS', ra, dec), "
-                              "circle('ICRS', 150.0, 20.0, 25.0)) order by source_id"
-                              .replace("SOURCE_ID", "source_id"))
+                              "circle('ICRS', 150.0, 20.0, 25.0)) order by orrery_id"
+                              .replace("ORRERY_ID", "orrery_id"))
     assert again.id == first.id and again.rows == rows
     assert len(again.table()) == rows
 
@@ -178,9 +178,9 @@ def test_no_request_reaches_the_service_on_a_hit(tap, desk):
 
 
 def test_identifier_case_and_literals_make_new_jobs(tap, desk):
-    a = desk.submit(tap.url, "SELECT TOP 3 source_id FROM orrery.sources ORDER BY source_id")
-    b = desk.submit(tap.url, "select top 3 source_id from orrery.sources order by source_id")
-    c = desk.submit(tap.url, "SELECT TOP 3 SOURCE_ID FROM orrery.sources ORDER BY source_id")
+    a = desk.submit(tap.url, "SELECT TOP 3 orrery_id FROM orrery.sources ORDER BY orrery_id")
+    b = desk.submit(tap.url, "select top 3 orrery_id from orrery.sources order by orrery_id")
+    c = desk.submit(tap.url, "SELECT TOP 3 ORRERY_ID FROM orrery.sources ORDER BY orrery_id")
     assert a.id == b.id != c.id
     # Services name output columns after the query's spelling, so the difference is real.
     assert c.wait(progress=False).table().colnames != a.wait(progress=False).table().colnames
@@ -188,7 +188,7 @@ def test_identifier_case_and_literals_make_new_jobs(tap, desk):
 
 def test_not_repeatable_query_warns(tap, desk):
     with pytest.warns(NotRepeatableWarning):
-        desk.submit(tap.url, "SELECT TOP 3 source_id FROM orrery.sources")
+        desk.submit(tap.url, "SELECT TOP 3 orrery_id FROM orrery.sources")
 
 
 # --- [5] overflow -----------------------------------------------------------------------------
@@ -197,14 +197,14 @@ def test_not_repeatable_query_warns(tap, desk):
 def test_truncated_result_is_never_served_as_complete(tap, desk):
     # DALI 1.1 §4.4.1 (QUERY_STATUS=OVERFLOW after the table) is what the service writes.
     with pytest.warns(TruncatedResultWarning, match="cut at 50 rows"):
-        job = desk.submit(tap.url, "SELECT source_id FROM orrery.sources ORDER BY source_id",
+        job = desk.submit(tap.url, "SELECT orrery_id FROM orrery.sources ORDER BY orrery_id",
                           maxrec=50).wait(progress=False)
     assert job.truncated is True and job.rows == 50
     with pytest.raises(ResultTruncated, match="50 rows") as info:
         job.table()
     assert info.value.rows == 50 and "maxrec" in str(info.value)
     assert len(job.table(allow_truncated=True)) == 50
-    full = desk.submit(tap.url, "SELECT source_id FROM orrery.sources ORDER BY source_id",
+    full = desk.submit(tap.url, "SELECT orrery_id FROM orrery.sources ORDER BY orrery_id",
                        maxrec=ROWS + 10).wait(progress=False)
     assert full.truncated is False and len(full.table()) == ROWS
 
@@ -214,7 +214,7 @@ def test_truncated_result_is_never_served_as_complete(tap, desk):
 
 def test_bad_adql_carries_the_services_message(tap, desk):
     with pytest.raises(QueryRejected) as info:
-        desk.submit(tap.url, "SELECT source_id FORM orrery.sources").wait(progress=False)
+        desk.submit(tap.url, "SELECT orrery_id FORM orrery.sources").wait(progress=False)
     text = str(info.value)
     assert "FORM" in text or "line" in text.lower()
     assert info.value.hint
@@ -347,9 +347,9 @@ def test_token_never_reaches_disk(tap, tmp_path):
 def test_limit_holds_extra_jobs_locally_and_starts_them_in_order(tmp_path):
     with serve(state=tmp_path / "tap", rows=ROWS, exec_delay=1.0) as tap:
         desk = Desk(tmp_path / "d", limits={tap.url: 1})
-        jobs = [desk.submit(tap.url, f"SELECT TOP {n} source_id FROM orrery.sources "
-                                     "ORDER BY source_id") for n in (1, 2, 3)]
-        assert [j.phase == phases.LOCAL for j in jobs] == [False, True, True]
+        jobs = [desk.submit(tap.url, f"SELECT TOP {n} orrery_id FROM orrery.sources "
+                                     "ORDER BY orrery_id") for n in (1, 2, 3)]
+        assert [j.phase == phases.UNSENT for j in jobs] == [False, True, True]
         jobs[2].wait(progress=False)   # waiting on the last still starts them in order
         for j in jobs[:2]:
             j.wait(progress=False)

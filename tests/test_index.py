@@ -7,12 +7,13 @@ import sys
 import time
 
 import pytest
+import sqlite_utils
 
 from jobdesk import phases
 from jobdesk.index import SCHEMA_VERSION, Index, owner_alive, this_process
 
 
-def _record(job_id, service="http://svc/tap", phase=phases.LOCAL, **extra):
+def _record(job_id, service="http://svc/tap", phase=phases.UNSENT, **extra):
     return {"id": job_id, "service": service, "phase": phase, "adql": "SELECT 1", **extra}
 
 
@@ -48,7 +49,7 @@ def test_rejected_record_gets_a_successor(tmp_path):
     ix.update("a", phase=phases.ERROR, error="boom")
     second, created = ix.claim("k", _record("b"), reuse=lambda r: r["phase"] != phases.ERROR)
     assert created and second["id"] == "b"
-    assert [h["phase"] for h in ix.history("a")] == [phases.LOCAL, phases.ERROR]
+    assert [h["phase"] for h in ix.history("a")] == [phases.UNSENT, phases.ERROR]
 
 
 def test_schema_is_versioned(tmp_path):
@@ -56,6 +57,26 @@ def test_schema_is_versioned(tmp_path):
     Index(path).close()
     assert sqlite3.connect(path).execute("PRAGMA user_version").fetchone()[0] == SCHEMA_VERSION
     Index(path)  # re-opening migrates nothing and does not fail
+
+
+def test_records_of_an_older_schema_stay_readable(tmp_path):
+    # A v3 index (before the "not yet sent" phase was renamed) with a waiting record in it.
+    from jobdesk.index import MIGRATIONS
+
+    path = tmp_path / "i.sqlite"
+    db = sqlite_utils.Database(path)
+    for step in MIGRATIONS[:3]:
+        step(db)
+    db.execute("PRAGMA user_version = 3")
+    db.execute("INSERT INTO jobs (id, key, service, phase, created, adql) "
+               "VALUES ('old', 'k', 'http://svc/tap', 'LOCAL', 1.0, 'SELECT 1')")
+    db.execute("INSERT INTO phases (job_id, phase, at) VALUES ('old', 'LOCAL', 1.0)")
+    db.conn.commit()
+    db.close()
+    ix = Index(path)
+    assert ix.get("old")["phase"] == phases.UNSENT
+    assert [h["phase"] for h in ix.history("old")] == [phases.UNSENT]
+    assert [r["id"] for r in ix.unfinished()] == ["old"]
 
 
 def test_newer_schema_is_refused(tmp_path):
@@ -133,7 +154,7 @@ def test_version_changes_on_every_update(tmp_path):
 
 def test_unfinished_lists_active_and_unfetched_only(tmp_path):
     ix = Index(tmp_path / "i.sqlite")
-    wanted = {"run": phases.EXECUTING, "wait": phases.LOCAL, "todo": phases.COMPLETED}
+    wanted = {"run": phases.EXECUTING, "wait": phases.UNSENT, "todo": phases.COMPLETED}
     done = {"done": phases.COMPLETED, "bad": phases.ERROR}
     for n, (job_id, phase) in enumerate({**wanted, **done}.items()):
         ix.claim(f"k{n}", _record(job_id, phase=phase, created=1000.0 + n), reuse=lambda r: True)

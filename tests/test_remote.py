@@ -390,7 +390,7 @@ def test_a_dropped_download_resumes_or_restarts_to_the_same_bytes(tap, tmp_path,
 
 def test_a_dropped_download_without_ranges_restarts_from_zero(tap, tmp_path):
     # localtap serves /sync answers without Accept-Ranges; each answer is generated anew.
-    url = (f"{tap.url}/sync?LANG=ADQL&QUERY=SELECT+*+FROM+{TABLE}+ORDER+BY+source_id")
+    url = (f"{tap.url}/sync?LANG=ADQL&QUERY=SELECT+*+FROM+{TABLE}+ORDER+BY+orrery_id")
     cut = 7000
     tap.configure(drop_result_after=cut, drop_result_times=2)
     sent_before = tap.stats()["result_bytes_sent"]

@@ -20,10 +20,10 @@ import numpy as np
 from .tapschema import Column, ForeignKey, SchemaInfo, TableInfo
 
 SCHEMA = "orrery"
-LAYOUT_VERSION = 1
-SOURCE_ID_BASE = 7_300_000_000_000
-EPOCH_EVERY = 4        # every 4th source has a light curve ...
-EPOCHS_PER_SOURCE = 4  # ... of this many epochs
+LAYOUT_VERSION = 2
+ORRERY_ID_BASE = 3_100_000  # invented: ids run upwards from here in steps of 1 to 5
+VISIT_EVERY = 4        # every 4th source has a light curve ...
+VISITS_PER_SOURCE = 4  # ... of this many visits
 BANDS = ("cyan", "lime", "rose")
 
 SCHEMA_INFO = SchemaInfo(SCHEMA, "Orrery Wide Sky Census: an invented all-sky survey (demo data)")
@@ -36,16 +36,16 @@ def _col(name, datatype, unit, ucd, description, *, arraysize=None, principal=Fa
 
 # UCDs from the IVOA UCD1+ controlled vocabulary; units in VOUnits syntax
 SOURCES = TableInfo(SCHEMA, "sources", "One row per detected source of the Orrery Wide Sky Census", [
-    _col("source_id", "long", None, "meta.id;meta.main", "unique source identifier",
+    _col("orrery_id", "long", None, "meta.id;meta.main", "unique source identifier",
          principal=True, indexed=True),
     _col("ra", "double", "deg", "pos.eq.ra;meta.main", "right ascension (ICRS, epoch 2020.0)",
          principal=True),
     _col("dec", "double", "deg", "pos.eq.dec;meta.main", "declination (ICRS, epoch 2020.0)",
          principal=True, indexed=True),
-    _col("pmra", "float", "mas/yr", "pos.pm;pos.eq.ra", "proper motion in RA, times cos(dec)"),
-    _col("pmdec", "float", "mas/yr", "pos.pm;pos.eq.dec", "proper motion in declination"),
+    _col("pm_ra_cosdec", "float", "mas/yr", "pos.pm;pos.eq.ra", "proper motion in RA, times cos(dec)"),
+    _col("pm_dec", "float", "mas/yr", "pos.pm;pos.eq.dec", "proper motion in declination"),
     _col("parallax", "float", "mas", "pos.parallax", "parallax; NULL for extended sources"),
-    _col("parallax_error", "float", "mas", "stat.error;pos.parallax", "standard error of parallax"),
+    _col("parallax_sigma", "float", "mas", "stat.error;pos.parallax", "standard error of parallax"),
     _col("mag_cyan", "float", "mag", "phot.mag;em.opt.B", "mean magnitude in the cyan band",
          principal=True),
     _col("mag_lime", "float", "mag", "phot.mag;em.opt.V", "mean magnitude in the lime band",
@@ -58,20 +58,20 @@ SOURCES = TableInfo(SCHEMA, "sources", "One row per detected source of the Orrer
          arraysize="*"),
 ])
 
-EPOCHS = TableInfo(SCHEMA, "epochs", "Single-epoch photometry of every fourth source", [
-    _col("epoch_id", "long", None, "meta.id", "unique identifier of this measurement",
+VISITS = TableInfo(SCHEMA, "visits", "Single-visit photometry of every fourth source", [
+    _col("visit_id", "long", None, "meta.id", "unique identifier of this measurement",
          principal=True, indexed=True),
-    _col("source_id", "long", None, "meta.id;meta.main", "source measured (orrery.sources)",
+    _col("orrery_id", "long", None, "meta.id;meta.main", "source measured (orrery.sources)",
          principal=True, indexed=True),
     _col("obs_time", "double", "d", "time.epoch", "time of observation (MJD, TDB)", principal=True),
     _col("band", "char", None, "instr.bandpass", "band: cyan, lime or rose", arraysize="*",
          principal=True),
-    _col("mag", "float", "mag", "phot.mag", "magnitude in this epoch", principal=True),
-    _col("mag_err", "float", "mag", "stat.error;phot.mag", "standard error of mag"),
-], foreign_keys=[ForeignKey("orrery_epochs_source", "orrery.epochs", "orrery.sources",
-                            [("source_id", "source_id")], "each epoch belongs to one source")])
+    _col("mag", "float", "mag", "phot.mag", "magnitude in this visit", principal=True),
+    _col("mag_sigma", "float", "mag", "stat.error;phot.mag", "standard error of mag"),
+], foreign_keys=[ForeignKey("orrery_visits_source", "orrery.visits", "orrery.sources",
+                            [("orrery_id", "orrery_id")], "each visit belongs to one source")])
 
-TABLES = [SOURCES, EPOCHS]
+TABLES = [SOURCES, VISITS]
 
 
 def catalogue_path(state_dir: Path, rows: int, seed: int) -> Path:
@@ -148,14 +148,14 @@ def generate_sources(rows: int, seed: int) -> dict[str, np.ndarray]:
     star = label == "star"
     label_null = rng.random(n) < 0.01
 
-    parallax_error = 0.02 + 0.1 * rng.random(n)
-    parallax = np.where(star, rng.exponential(1.2, n), np.nan) + rng.normal(0.0, 1.0, n) * parallax_error
+    parallax_sigma = 0.02 + 0.1 * rng.random(n)
+    parallax = np.where(star, rng.exponential(1.2, n), np.nan) + rng.normal(0.0, 1.0, n) * parallax_sigma
     pm_scale = np.where(star, 8.0, 0.3)
-    pmra = rng.normal(0.0, 1.0, n) * pm_scale
-    pmdec = rng.normal(0.0, 1.0, n) * pm_scale
+    pm_ra_cosdec = rng.normal(0.0, 1.0, n) * pm_scale
+    pm_dec = rng.normal(0.0, 1.0, n) * pm_scale
     pm_null = rng.random(n) < 0.01
-    pmra[pm_null] = np.nan
-    pmdec[pm_null] = np.nan
+    pm_ra_cosdec[pm_null] = np.nan
+    pm_dec[pm_null] = np.nan
 
     mag_lime = rng.uniform(12.0, 21.0, n)
     colour = np.where(star, rng.normal(0.8, 0.5, n), rng.normal(1.2, 0.3, n))
@@ -163,10 +163,10 @@ def generate_sources(rows: int, seed: int) -> dict[str, np.ndarray]:
     mag_rose = mag_lime - colour * 0.45
     mag_rose[rng.random(n) < 0.03] = np.nan
     return {
-        "source_id": SOURCE_ID_BASE + np.arange(n, dtype=np.int64) * 16 + rng.integers(0, 16, n),
+        "orrery_id": ORRERY_ID_BASE + np.cumsum(rng.integers(1, 6, n), dtype=np.int64),
         "ra": ra, "dec": dec,
-        "pmra": np.round(pmra, 3), "pmdec": np.round(pmdec, 3),
-        "parallax": np.round(parallax, 4), "parallax_error": np.round(parallax_error, 4),
+        "pm_ra_cosdec": np.round(pm_ra_cosdec, 3), "pm_dec": np.round(pm_dec, 3),
+        "parallax": np.round(parallax, 4), "parallax_sigma": np.round(parallax_sigma, 4),
         "mag_cyan": np.round(mag_cyan, 4), "mag_lime": np.round(mag_lime, 4),
         "mag_rose": np.round(mag_rose, 4), "cyan_rose": np.round(mag_cyan - mag_rose, 4),
         "var_flag": (rng.random(n) < 0.08).astype(np.int64),
@@ -174,25 +174,25 @@ def generate_sources(rows: int, seed: int) -> dict[str, np.ndarray]:
     }
 
 
-def generate_epochs(src: dict[str, np.ndarray], seed: int) -> dict[str, np.ndarray]:
+def generate_visits(src: dict[str, np.ndarray], seed: int) -> dict[str, np.ndarray]:
     rng = np.random.default_rng([seed, 1])
-    chosen = np.arange(0, len(src["source_id"]), EPOCH_EVERY)
-    idx = np.repeat(chosen, EPOCHS_PER_SOURCE)
+    chosen = np.arange(0, len(src["orrery_id"]), VISIT_EVERY)
+    idx = np.repeat(chosen, VISITS_PER_SOURCE)
     m = len(idx)
-    band_no = np.tile(np.arange(EPOCHS_PER_SOURCE) % len(BANDS), len(chosen))
+    band_no = np.tile(np.arange(VISITS_PER_SOURCE) % len(BANDS), len(chosen))
     base = np.choose(band_no, [src["mag_cyan"][idx], src["mag_lime"][idx],
                                np.where(np.isnan(src["mag_rose"][idx]), src["mag_lime"][idx],
                                         src["mag_rose"][idx])])
     obs_time = 60000.0 + rng.uniform(0.0, 1500.0, m)
     swing = np.where(src["var_flag"][idx] == 1, 0.4 * np.sin(obs_time / 3.7), 0.0)
-    mag_err = 0.005 + 0.02 * rng.random(m)
+    mag_sigma = 0.005 + 0.02 * rng.random(m)
     return {
-        "epoch_id": np.arange(1, m + 1, dtype=np.int64),
-        "source_id": src["source_id"][idx],
+        "visit_id": np.arange(1, m + 1, dtype=np.int64),
+        "orrery_id": src["orrery_id"][idx],
         "obs_time": np.round(obs_time, 5),
         "band": np.array(BANDS, dtype=object)[band_no],
-        "mag": np.round(base + swing + rng.normal(0.0, 1.0, m) * mag_err, 4),
-        "mag_err": np.round(mag_err, 4),
+        "mag": np.round(base + swing + rng.normal(0.0, 1.0, m) * mag_sigma, 4),
+        "mag_sigma": np.round(mag_sigma, 4),
     }
 
 
@@ -212,13 +212,13 @@ def _build(path: Path, rows: int, seed: int) -> None:
     try:
         conn.execute("PRAGMA journal_mode=OFF")
         conn.execute("PRAGMA synchronous=OFF")
-        _create(conn, SOURCES, "source_id")
-        _create(conn, EPOCHS, "epoch_id")
+        _create(conn, SOURCES, "orrery_id")
+        _create(conn, VISITS, "visit_id")
         src = generate_sources(rows, seed)
         _insert(conn, SOURCES, _columns(SOURCES, src))
-        _insert(conn, EPOCHS, _columns(EPOCHS, generate_epochs(src, seed)))
+        _insert(conn, VISITS, _columns(VISITS, generate_visits(src, seed)))
         conn.execute("CREATE INDEX sources_dec ON sources (dec)")
-        conn.execute("CREATE INDEX epochs_source ON epochs (source_id)")
+        conn.execute("CREATE INDEX visits_source ON visits (orrery_id)")
         conn.execute("CREATE TABLE build_info (rows INTEGER, seed INTEGER, layout INTEGER)")
         conn.execute("INSERT INTO build_info VALUES (?, ?, ?)", (rows, seed, LAYOUT_VERSION))
         conn.commit()

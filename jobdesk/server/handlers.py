@@ -38,7 +38,7 @@ from jobdesk.errors import BadServiceURL, JobdeskError, ResultUnavailable, Servi
 from jobdesk.keys import service_id
 
 JOB_ID = re.compile(r"^[0-9a-f]{6,64}$")
-KNOWN_PHASES = frozenset(phases.UWS_PHASES) | {phases.LOCAL, phases.SUBMITTED, phases.LOST}
+KNOWN_PHASES = frozenset(phases.UWS_PHASES) | {phases.UNSENT, phases.SUBMITTED, phases.LOST}
 MAX_PAGE = 500
 MAX_PREVIEW_ROWS = 200
 

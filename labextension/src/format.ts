@@ -7,7 +7,7 @@ export const TERMINAL = new Set(['COMPLETED', 'ERROR', 'ABORTED', 'ARCHIVED', 'L
 
 /** Phases worth watching: recorded here, waiting, or running on the service. */
 export const ACTIVE = [
-  'LOCAL',
+  'UNSENT',
   'SUBMITTED',
   'PENDING',
   'QUEUED',
@@ -24,7 +24,7 @@ export const PHASE_FILTERS: Array<[string, string]> = [
   ['Completed', 'COMPLETED'],
   ['Failed', 'ERROR,LOST'],
   ['Aborted', 'ABORTED'],
-  ['Queued', 'LOCAL,SUBMITTED,PENDING,QUEUED,HELD'],
+  ['Queued', 'UNSENT,SUBMITTED,PENDING,QUEUED,HELD'],
   ['Executing', 'EXECUTING']
 ];
 

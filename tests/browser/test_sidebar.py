@@ -20,7 +20,7 @@ from jobdesk.desk import Desk
 from jobdesk.localtap import serve
 
 DOCS = Path(__file__).resolve().parents[2] / "docs"
-QUERY = "SELECT TOP 7 source_id, ra, dec, mag_lime FROM orrery.sources ORDER BY source_id"
+QUERY = "SELECT TOP 7 orrery_id, ra, dec, mag_lime FROM orrery.sources ORDER BY orrery_id"
 NOTEBOOK = "story.ipynb"
 
 
@@ -98,7 +98,7 @@ def test_the_whole_story(lab, page, taps, tmp_path):
     row(page, done.id).focus()
     page.keyboard.press("Enter")
     details = page.locator(f"#jobdesk-job-{done.id}")
-    details.get_by_text("ORDER BY source_id").first.wait_for(timeout=20_000)
+    details.get_by_text("ORDER BY orrery_id").first.wait_for(timeout=20_000)
 
     # A few more phases for the picture, then the screenshot of the sidebar.
     desk.submit(slow.url, QUERY.replace("TOP 7", "TOP 3"), label="still running")

@@ -18,7 +18,7 @@ from jobdesk.errors import GroupCacheWarning, PublishRefused, TruncatedResultWar
 from jobdesk.groups import layout, maintain
 from jobdesk.groups.layer import GroupLayer
 
-QUERY = "SELECT TOP {n} source_id, ra, dec FROM orrery.sources ORDER BY source_id"
+QUERY = "SELECT TOP {n} orrery_id, ra, dec FROM orrery.sources ORDER BY orrery_id"
 
 
 def _query(n: int) -> str:
@@ -52,7 +52,7 @@ def test_published_result_serves_a_colleague_without_the_service(tap, tmp_path, 
         job = member_b.submit(tap.url, _query(1200))
     assert _requests(tap) == before, "served from the group: no request to the service"
     assert job.phase == phases.COMPLETED and job.record["layer"] == "lab"
-    assert list(job.table()["source_id"]) == list(first.table()["source_id"])
+    assert list(job.table()["orrery_id"]) == list(first.table()["orrery_id"])
     # The copy member B serves is their own, and it is the very file member A fetched.
     assert job.record["result_sha256"] == first.record["result_sha256"]
     assert member_b.store.verify(job.record["parquet_sha256"])
@@ -237,7 +237,7 @@ def test_group_listing_in_the_index_fetches_verified_on_first_use(tap, tmp_path,
     before = _requests(tap)
     job = member_b.submit(tap.url, _query(65))
     assert job.id in {j.id for j in member_b.jobs()} and _requests(tap) == before
-    assert list(job.table()["source_id"]) == list(good.table()["source_id"])
+    assert list(job.table()["orrery_id"]) == list(good.table()["orrery_id"])
     assert member_b.store.verify(job.record["parquet_sha256"])
 
 

@@ -111,7 +111,7 @@ def test_many_processes_publish_and_read_the_same_keys(tmp_path, place):
     assert place.files(layout.TMP) == []
 
 
-QUERIES = [f"SELECT TOP {n} source_id, mag_lime FROM orrery.sources ORDER BY source_id"
+QUERIES = [f"SELECT TOP {n} orrery_id, mag_lime FROM orrery.sources ORDER BY orrery_id"
            for n in (110, 120, 130)]
 
 
@@ -126,7 +126,7 @@ def _member(root, group, url, ready, go, out):
             for query in QUERIES:
                 job = desk.submit(url, query).wait(progress=False)
                 answer[query] = {"layer": job.record["layer"],
-                                 "ids": [int(x) for x in job.table()["source_id"]],
+                                 "ids": [int(x) for x in job.table()["orrery_id"]],
                                  "verified": desk.store.verify(job.record["parquet_sha256"])}
         out.put(json.dumps({"answer": answer, "warnings": [str(w.message) for w in seen]}))
     except BaseException:

@@ -6,7 +6,7 @@ import time
 
 from jobdesk import Desk
 
-QUERY = "SELECT TOP {n} source_id, ra, dec FROM orrery.sources ORDER BY source_id"
+QUERY = "SELECT TOP {n} orrery_id, ra, dec FROM orrery.sources ORDER BY orrery_id"
 
 
 def test_prune_by_age_and_size_spares_pins_and_shared_files(tap, tmp_path):

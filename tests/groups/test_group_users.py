@@ -27,7 +27,7 @@ pytestmark = [
                        reason="needs useradd and groupadd"),
 ]
 
-QUERY = "SELECT TOP {n} source_id, ra FROM orrery.sources ORDER BY source_id"
+QUERY = "SELECT TOP {n} orrery_id, ra FROM orrery.sources ORDER BY orrery_id"
 
 
 @pytest.fixture(scope="module")

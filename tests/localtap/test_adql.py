@@ -28,7 +28,7 @@ def engine(tmp_path_factory):
 def data():
     """The same numbers the catalogue was built from (independent of SQL)."""
     src = catalogue.generate_sources(ROWS, SEED)
-    return src, catalogue.generate_epochs(src, SEED)
+    return src, catalogue.generate_visits(src, SEED)
 
 
 def run(engine, adql, maxrec=None, **kw):
@@ -42,8 +42,8 @@ def run(engine, adql, maxrec=None, **kw):
 
 def test_keywords_and_regular_identifiers_ignore_case(engine):
     # ADQL 2.1 §2.1.2 (keywords) and §2.1.3 (regular identifiers are case-insensitive)
-    _, lower = run(engine, "select top 5 source_id, ra from orrery.sources order by source_id")
-    _, mixed = run(engine, "SeLeCt ToP 5 SOURCE_ID, Ra FrOm ORRERY.Sources OrDeR bY Source_Id")
+    _, lower = run(engine, "select top 5 orrery_id, ra from orrery.sources order by orrery_id")
+    _, mixed = run(engine, "SeLeCt ToP 5 ORRERY_ID, Ra FrOm ORRERY.Sources OrDeR bY Orrery_Id")
     assert lower == mixed and len(lower) == 5
 
 
@@ -78,7 +78,7 @@ def test_quote_escapes_in_strings_and_identifiers(engine):
 def test_comments_run_to_end_of_line_and_minus_minus_is_a_comment(engine, data):
     # ADQL 2.1 §2.1: -- starts a comment; a - -1 stays arithmetic (PROTOCOL.md)
     r, rows = run(engine, "SELECT TOP 1 ra - -1 AS a, ra--1 AS b\n, ra FROM orrery.sources -- trailing\n"
-                          "ORDER BY source_id")
+                          "ORDER BY orrery_id")
     ra0 = data[0]["ra"][0]
     assert rows[0] == pytest.approx((ra0 + 1, ra0, ra0))
     # "AS b" was inside the comment; a repeated output name gets a suffix
@@ -98,10 +98,10 @@ def test_numeric_literals_keep_their_types(engine):
 
 def test_top_and_offset(engine, data):
     # ADQL 2.1 §2.2: TOP n limits rows; OFFSET n (new in 2.1) skips rows after ORDER BY
-    ids = np.sort(data[0]["source_id"])
-    _, rows = run(engine, "SELECT TOP 4 source_id FROM orrery.sources ORDER BY source_id OFFSET 10")
+    ids = np.sort(data[0]["orrery_id"])
+    _, rows = run(engine, "SELECT TOP 4 orrery_id FROM orrery.sources ORDER BY orrery_id OFFSET 10")
     assert [r[0] for r in rows] == ids[10:14].tolist()
-    _, rows = run(engine, "SELECT source_id FROM orrery.sources ORDER BY source_id DESC OFFSET 2990")
+    _, rows = run(engine, "SELECT orrery_id FROM orrery.sources ORDER BY orrery_id DESC OFFSET 2990")
     assert [r[0] for r in rows] == ids[::-1][2990:].tolist()
 
 
@@ -133,26 +133,26 @@ def test_like_is_case_sensitive_and_ilike_is_not(engine, data):
 
 def test_join_to_epochs_group_by_having(engine, data):
     src, ep = data
-    _, rows = run(engine, "SELECT s.source_id, COUNT(*) AS n, MAX(e.mag) AS brightest_is_not_this "
-                          "FROM orrery.sources AS s JOIN orrery.epochs AS e ON e.source_id = s.source_id "
-                          "WHERE s.var_flag = 1 GROUP BY s.source_id HAVING COUNT(*) >= 4 "
-                          "ORDER BY s.source_id")
-    variable = set(src["source_id"][src["var_flag"] == 1].tolist())
-    ids, counts = np.unique(ep["source_id"], return_counts=True)
+    _, rows = run(engine, "SELECT s.orrery_id, COUNT(*) AS n, MAX(e.mag) AS brightest_is_not_this "
+                          "FROM orrery.sources AS s JOIN orrery.visits AS e ON e.orrery_id = s.orrery_id "
+                          "WHERE s.var_flag = 1 GROUP BY s.orrery_id HAVING COUNT(*) >= 4 "
+                          "ORDER BY s.orrery_id")
+    variable = set(src["orrery_id"][src["var_flag"] == 1].tolist())
+    ids, counts = np.unique(ep["orrery_id"], return_counts=True)
     expected = sorted(i for i, c in zip(ids.tolist(), counts.tolist()) if i in variable and c >= 4)
     assert [r[0] for r in rows] == expected and expected
-    assert all(r[1] == catalogue.EPOCHS_PER_SOURCE for r in rows)
+    assert all(r[1] == catalogue.VISITS_PER_SOURCE for r in rows)
 
 
 def test_subqueries_in_where_from_and_select(engine, data):
     src, ep = data
-    faint = set(ep["source_id"][ep["mag"] > 20.0].tolist())
-    _, rows = run(engine, "SELECT source_id FROM orrery.sources WHERE source_id IN "
-                          "(SELECT source_id FROM orrery.epochs WHERE mag > 20.0)")
+    faint = set(ep["orrery_id"][ep["mag"] > 20.0].tolist())
+    _, rows = run(engine, "SELECT orrery_id FROM orrery.sources WHERE orrery_id IN "
+                          "(SELECT orrery_id FROM orrery.visits WHERE mag > 20.0)")
     assert {r[0] for r in rows} == faint
     _, rows = run(engine, "SELECT COUNT(*) FROM orrery.sources AS s WHERE EXISTS "
-                          "(SELECT 1 FROM orrery.epochs AS e WHERE e.source_id = s.source_id)")
-    assert rows[0][0] == len(np.unique(ep["source_id"]))
+                          "(SELECT 1 FROM orrery.visits AS e WHERE e.orrery_id = s.orrery_id)")
+    assert rows[0][0] == len(np.unique(ep["orrery_id"]))
     _, rows = run(engine, "SELECT q.n FROM (SELECT class_label, COUNT(*) AS n FROM orrery.sources "
                           "GROUP BY class_label) AS q WHERE q.class_label = 'galaxy'")
     assert rows == [(int(np.sum(src["class_label"] == "galaxy")),)]
@@ -160,22 +160,22 @@ def test_subqueries_in_where_from_and_select(engine, data):
 
 def test_union_and_with(engine, data):
     src = data[0]
-    _, rows = run(engine, "SELECT source_id FROM orrery.sources WHERE dec > 89.5 UNION "
-                          "SELECT source_id FROM orrery.sources WHERE dec < -89.5 ORDER BY source_id")
-    expected = np.sort(src["source_id"][np.abs(src["dec"]) > 89.5]).tolist()
+    _, rows = run(engine, "SELECT orrery_id FROM orrery.sources WHERE dec > 89.5 UNION "
+                          "SELECT orrery_id FROM orrery.sources WHERE dec < -89.5 ORDER BY orrery_id")
+    expected = np.sort(src["orrery_id"][np.abs(src["dec"]) > 89.5]).tolist()
     assert [r[0] for r in rows] == expected and expected
-    _, rows = run(engine, "WITH bright AS (SELECT source_id FROM orrery.sources WHERE mag_lime < 13) "
+    _, rows = run(engine, "WITH bright AS (SELECT orrery_id FROM orrery.sources WHERE mag_lime < 13) "
                           "SELECT COUNT(*) FROM bright")
     assert rows[0][0] == int(np.sum(src["mag_lime"] < 13))
 
 
 def test_cast_coalesce_case(engine, data):
     src = data[0]
-    r, rows = run(engine, "SELECT TOP 1 CAST(ra AS INTEGER) AS r, CAST(source_id AS VARCHAR(20)) AS t, "
+    r, rows = run(engine, "SELECT TOP 1 CAST(ra AS INTEGER) AS r, CAST(orrery_id AS VARCHAR(20)) AS t, "
                           "COALESCE(mag_rose, -1) AS m, CASE WHEN var_flag = 1 THEN 'var' ELSE 'const' END "
-                          "AS kind FROM orrery.sources WHERE mag_rose IS NULL ORDER BY source_id")
+                          "AS kind FROM orrery.sources WHERE mag_rose IS NULL ORDER BY orrery_id")
     first = int(np.flatnonzero(np.isnan(src["mag_rose"]))[0])
-    assert rows == [(int(src["ra"][first]), str(src["source_id"][first]), -1.0,
+    assert rows == [(int(src["ra"][first]), str(src["orrery_id"][first]), -1.0,
                      "var" if src["var_flag"][first] else "const")]
     assert [c.datatype for c in r.columns] == ["int", "char", "float", "char"]
 
@@ -221,7 +221,7 @@ def test_syntax_errors_say_where(engine, adql, line, column):
     ("SELECT nothing FROM orrery.sources", "unknown column 'nothing'"),
     ("SELECT s.nothing FROM orrery.sources AS s", "unknown column 'nothing' in orrery.sources"),
     ("SELECT x.ra FROM orrery.sources AS s", "unknown table or alias 'x'"),
-    ("SELECT source_id FROM orrery.sources AS s JOIN orrery.epochs AS e ON s.source_id = e.source_id",
+    ("SELECT orrery_id FROM orrery.sources AS s JOIN orrery.visits AS e ON s.orrery_id = e.orrery_id",
      "ambiguous"),
     ("SELECT LEN(class_label) FROM orrery.sources", "not an ADQL 2.1 function"),
     ("SELECT [ra] FROM orrery.sources", "square brackets"),
@@ -229,10 +229,10 @@ def test_syntax_errors_say_where(engine, adql, line, column):
     ("SELECT ra FROM orrery.sources; DELETE FROM orrery.sources", "exactly one SELECT"),
     ("DELETE FROM orrery.sources", "only SELECT"),
     ("SELECT TOP 10 PERCENT ra FROM orrery.sources", "PERCENT"),
-    ("SELECT ra FROM orrery.sources AS s JOIN orrery.epochs AS e USING (source_id)", "USING"),
+    ("SELECT ra FROM orrery.sources AS s JOIN orrery.visits AS e USING (orrery_id)", "USING"),
     ("SELECT REGION('Circle ICRS 1 2 3') FROM orrery.sources", "REGION"),
     ("SELECT 1", "FROM"),
-    ("SELECT TOP 1 * FROM orrery.sources NATURAL JOIN orrery.epochs", "NATURAL"),
+    ("SELECT TOP 1 * FROM orrery.sources NATURAL JOIN orrery.visits", "NATURAL"),
     ("SELECT t.a FROM (SELECT ra FROM orrery.sources) AS t(a)", "column lists"),
     ("SELECT @x FROM orrery.sources", "not supported"),
     ("WITH RECURSIVE x AS (SELECT ra FROM orrery.sources) SELECT ra FROM x", "RECURSIVE"),

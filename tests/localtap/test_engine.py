@@ -34,15 +34,15 @@ def all_rows(engine, adql, **kw):
 
 
 def test_same_seed_gives_identical_data_and_another_seed_differs(tmp_path):
-    q = "SELECT * FROM orrery.sources ORDER BY source_id"
+    q = "SELECT * FROM orrery.sources ORDER BY orrery_id"
     a = all_rows(Engine(tmp_path / "a", rows=500, seed=1), q)
     b = all_rows(Engine(tmp_path / "b", rows=500, seed=1), q)
     c = all_rows(Engine(tmp_path / "c", rows=500, seed=2), q)
     assert a == b
     assert a != c and len(a) == len(c) == 500
-    e1 = all_rows(Engine(tmp_path / "a", rows=500, seed=1), "SELECT * FROM orrery.epochs")
-    e2 = all_rows(Engine(tmp_path / "b", rows=500, seed=1), "SELECT * FROM orrery.epochs")
-    assert e1 == e2 and len(e1) == 125 * catalogue.EPOCHS_PER_SOURCE
+    e1 = all_rows(Engine(tmp_path / "a", rows=500, seed=1), "SELECT * FROM orrery.visits")
+    e2 = all_rows(Engine(tmp_path / "b", rows=500, seed=1), "SELECT * FROM orrery.visits")
+    assert e1 == e2 and len(e1) == 125 * catalogue.VISITS_PER_SOURCE
 
 
 def test_existing_catalogue_is_reused_not_rebuilt(tmp_path):
@@ -79,7 +79,7 @@ def test_catalogue_plants_edge_cases_and_nulls(engine):
 
 
 def test_result_types_follow_the_catalogue_metadata(engine):
-    r = engine.execute("SELECT source_id, ra, mag_lime, var_flag, class_label, parallax "
+    r = engine.execute("SELECT orrery_id, ra, mag_lime, var_flag, class_label, parallax "
                        "FROM orrery.sources WHERE parallax IS NULL", maxrec=3)
     assert [(c.datatype, c.unit, c.ucd) for c in r.columns] == [
         ("long", None, "meta.id;meta.main"), ("double", "deg", "pos.eq.ra;meta.main"),
@@ -95,23 +95,23 @@ def test_result_types_follow_the_catalogue_metadata(engine):
 
 def test_overflow_only_when_rows_were_cut(engine):
     # TAP 1.1 §2.7.4 / DALI 1.1: overflow when MAXREC cut the result
-    r = engine.execute("SELECT source_id FROM orrery.sources", maxrec=10)
+    r = engine.execute("SELECT orrery_id FROM orrery.sources", maxrec=10)
     assert len(list(r.rows)) == 10 and r.overflow is True
-    r = engine.execute("SELECT TOP 10 source_id FROM orrery.sources", maxrec=10)
+    r = engine.execute("SELECT TOP 10 orrery_id FROM orrery.sources", maxrec=10)
     assert len(list(r.rows)) == 10 and r.overflow is False
-    r = engine.execute("SELECT source_id FROM orrery.sources", maxrec=2000)
+    r = engine.execute("SELECT orrery_id FROM orrery.sources", maxrec=2000)
     assert len(list(r.rows)) == 2000 and r.overflow is False
-    r = engine.execute("SELECT source_id FROM orrery.sources", maxrec=1999)
+    r = engine.execute("SELECT orrery_id FROM orrery.sources", maxrec=1999)
     assert len(list(r.rows)) == 1999 and r.overflow is True
 
 
 def test_maxrec_zero_gives_columns_only(engine):
     # TAP 1.1 §2.7.4: MAXREC=0 asks for metadata only
-    r = engine.execute("SELECT source_id, DISTANCE(POINT(ra, dec), POINT(0, 0)) AS d "
+    r = engine.execute("SELECT orrery_id, DISTANCE(POINT(ra, dec), POINT(0, 0)) AS d "
                        "FROM orrery.sources", maxrec=0)
-    assert [c.name for c in r.columns] == ["source_id", "d"]
+    assert [c.name for c in r.columns] == ["orrery_id", "d"]
     assert list(r.rows) == [] and r.overflow is True
-    r = engine.execute("SELECT source_id FROM orrery.sources WHERE dec > 91", maxrec=0)
+    r = engine.execute("SELECT orrery_id FROM orrery.sources WHERE dec > 91", maxrec=0)
     assert list(r.rows) == [] and r.overflow is False
 
 
@@ -134,7 +134,7 @@ def test_queries_from_many_threads(engine):
 def test_tap_schema_describes_every_table_and_column(engine):
     # TAP 1.1 §4.2, §4.3: tables and columns with units, UCDs and flags
     tables = {r[0] for r in all_rows(engine, "SELECT table_name FROM TAP_SCHEMA.tables")}
-    assert {"orrery.sources", "orrery.epochs", "TAP_SCHEMA.schemas", "TAP_SCHEMA.tables",
+    assert {"orrery.sources", "orrery.visits", "TAP_SCHEMA.schemas", "TAP_SCHEMA.tables",
             "TAP_SCHEMA.columns", "TAP_SCHEMA.keys", "TAP_SCHEMA.key_columns"} <= tables
     cols = all_rows(engine, "SELECT column_name, datatype, unit, ucd, indexed, principal, std, "
                             "column_index FROM TAP_SCHEMA.columns WHERE table_name = 'orrery.sources' "
@@ -142,7 +142,7 @@ def test_tap_schema_describes_every_table_and_column(engine):
     assert [c[0] for c in cols] == [c.name for c in catalogue.SOURCES.columns]
     by_name = {c[0]: c for c in cols}
     assert by_name["ra"][1:4] == ("double", "deg", "pos.eq.ra;meta.main")
-    assert by_name["pmra"][2] == "mas/yr" and by_name["dec"][4] == 1
+    assert by_name["pm_ra_cosdec"][2] == "mas/yr" and by_name["dec"][4] == 1
     # every column of every published table is listed
     for t in engine.tables():
         n = all_rows(engine, f"SELECT COUNT(*) FROM TAP_SCHEMA.columns WHERE table_name = '{t.qualified}'")
@@ -154,25 +154,25 @@ def test_tap_schema_keys_link_epochs_to_sources(engine):
     rows = all_rows(engine, "SELECT k.from_table, k.target_table, c.from_column, c.target_column "
                             "FROM TAP_SCHEMA.keys AS k JOIN TAP_SCHEMA.key_columns AS c "
                             "ON k.key_id = c.key_id")
-    assert rows == [("orrery.epochs", "orrery.sources", "source_id", "source_id")]
+    assert rows == [("orrery.visits", "orrery.sources", "orrery_id", "orrery_id")]
 
 
 def test_tables_for_vosi(engine):
     tables = {t.qualified: t for t in engine.tables()}
-    assert tables["orrery.epochs"].foreign_keys[0].target_table == "orrery.sources"
-    assert {c.name for c in tables["orrery.sources"].columns} >= {"source_id", "ra", "dec"}
+    assert tables["orrery.visits"].foreign_keys[0].target_table == "orrery.sources"
+    assert {c.name for c in tables["orrery.sources"].columns} >= {"orrery_id", "ra", "dec"}
 
 
 # --- uploads and user files -------------------------------------------------------------------
 
 
 def test_upload_joins_as_tap_upload(engine):
-    ids = [r[0] for r in all_rows(engine, "SELECT TOP 5 source_id FROM orrery.sources ORDER BY source_id")]
+    ids = [r[0] for r in all_rows(engine, "SELECT TOP 5 orrery_id FROM orrery.sources ORDER BY orrery_id")]
     mine = Table({"Src": np.array(ids + [1], dtype=np.int64), "note": ["a", "b", "c", "d", "e", "none"],
                   "weight": np.array([1.5, 2.5, 3.5, 4.5, 5.5, 6.5], dtype=np.float32)})
     mine["weight"].unit = u.mag
     r = engine.execute("SELECT m.src, m.Note, m.weight, s.ra FROM TAP_UPLOAD.mine AS m "
-                       "JOIN orrery.sources AS s ON s.source_id = m.src ORDER BY m.src",
+                       "JOIN orrery.sources AS s ON s.orrery_id = m.src ORDER BY m.src",
                        maxrec=None, uploads={"mine": mine})
     rows = list(r.rows)
     assert [row[0] for row in rows] == ids and [row[1] for row in rows] == list("abcde")

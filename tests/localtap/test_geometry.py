@@ -28,7 +28,7 @@ def engine(tmp_path_factory):
 @pytest.fixture(scope="module")
 def sky(engine):
     """All catalogue positions, read through ADQL itself."""
-    r = engine.execute("SELECT source_id, ra, dec FROM orrery.sources", maxrec=None)
+    r = engine.execute("SELECT orrery_id, ra, dec FROM orrery.sources", maxrec=None)
     rows = list(r.rows)
     ids = np.array([x[0] for x in rows])
     coords = SkyCoord([x[1] for x in rows] * u.deg, [x[2] for x in rows] * u.deg, frame="icrs")
@@ -57,7 +57,7 @@ def test_cone_equals_astropy_separation(engine, sky, ra, dec, radius):
     sep = coords.separation(centre).deg
     truth = set(ids[sep <= radius].tolist())
     assert len(truth) > 5, "the catalogue plants sources at every test cone"
-    got = ids_of(engine, f"SELECT source_id FROM orrery.sources WHERE "
+    got = ids_of(engine, f"SELECT orrery_id FROM orrery.sources WHERE "
                          f"1 = CONTAINS(POINT('ICRS', ra, dec), CIRCLE('ICRS', {ra}, {dec}, {radius}))")
     assert got == truth
 
@@ -66,7 +66,7 @@ def test_cone_equals_astropy_separation(engine, sky, ra, dec, radius):
 def test_distance_predicate_and_values_equal_astropy(engine, sky, ra, dec, radius):
     ids, coords = sky
     sep = coords.separation(SkyCoord(ra * u.deg, dec * u.deg)).deg  # truth: astropy
-    r = engine.execute(f"SELECT source_id, DISTANCE(POINT(ra, dec), POINT({ra}, {dec})) AS d "
+    r = engine.execute(f"SELECT orrery_id, DISTANCE(POINT(ra, dec), POINT({ra}, {dec})) AS d "
                        f"FROM orrery.sources WHERE DISTANCE(POINT(ra, dec), POINT({ra}, {dec})) < {radius}",
                        maxrec=None)
     rows = list(r.rows)
@@ -74,7 +74,7 @@ def test_distance_predicate_and_values_equal_astropy(engine, sky, ra, dec, radiu
     by_id = dict(zip(ids.tolist(), sep))
     assert max(abs(d - by_id[i]) for i, d in rows) < 1e-9
     # the four-number form of ADQL 2.1 gives the same values
-    four = dict(engine.execute(f"SELECT source_id, DISTANCE(ra, dec, {ra}, {dec}) FROM orrery.sources "
+    four = dict(engine.execute(f"SELECT orrery_id, DISTANCE(ra, dec, {ra}, {dec}) FROM orrery.sources "
                                f"WHERE DISTANCE(ra, dec, {ra}, {dec}) < {radius}", maxrec=None).rows)
     assert four == dict(rows)
 
@@ -82,10 +82,10 @@ def test_distance_predicate_and_values_equal_astropy(engine, sky, ra, dec, radiu
 def test_circle_circle_intersects_near_pole(engine, sky):
     ids, coords = sky
     sep = coords.separation(SkyCoord(0 * u.deg, 89.9 * u.deg)).deg  # truth: astropy
-    got = ids_of(engine, "SELECT source_id FROM orrery.sources "
+    got = ids_of(engine, "SELECT orrery_id FROM orrery.sources "
                          "WHERE 1 = INTERSECTS(CIRCLE(ra, dec, 0.1), CIRCLE(0, 89.9, 0.5))")
     assert got == set(ids[sep <= 0.6].tolist()) and got
-    inside = ids_of(engine, "SELECT source_id FROM orrery.sources "
+    inside = ids_of(engine, "SELECT orrery_id FROM orrery.sources "
                             "WHERE 1 = CONTAINS(CIRCLE(ra, dec, 0.1), CIRCLE(0, 89.9, 0.5))")
     assert inside == set(ids[sep + 0.1 <= 0.5].tolist()) and inside
 
@@ -133,7 +133,7 @@ def test_point_in_polygon_matches_position_angle_truth(engine, sky, vertices, re
     verts = vertices[::-1] if reverse else vertices  # vertex order must not matter
     inside, near = _inside_convex_by_position_angles(coords, verts)
     args = ", ".join(f"{ra}, {dec}" for ra, dec in verts)
-    got = ids_of(engine, f"SELECT source_id FROM orrery.sources "
+    got = ids_of(engine, f"SELECT orrery_id FROM orrery.sources "
                          f"WHERE 1 = CONTAINS(POINT(ra, dec), POLYGON('ICRS', {args}))")
     truth = set(ids[inside & ~near].tolist())
     undecided = set(ids[near].tolist())
@@ -153,7 +153,7 @@ def test_concave_polygon_is_the_union_of_its_convex_parts(engine, sky):
     truth_mask = in1 | in2
     undecided = set(ids[near1 | near2].tolist())
     args = ", ".join(f"{ra}, {dec}" for ra, dec in l_shape)
-    got = ids_of(engine, f"SELECT source_id FROM orrery.sources "
+    got = ids_of(engine, f"SELECT orrery_id FROM orrery.sources "
                          f"WHERE 1 = CONTAINS(POINT(ra, dec), POLYGON({args}))")
     truth = set(ids[truth_mask].tolist()) - undecided
     assert truth and got - undecided == truth
@@ -179,7 +179,7 @@ def test_circle_polygon_intersects_matches_sampled_edges(engine, sky):
     step = 0.71 * 2 / 400  # longest edge / samples: sampling error bound
     truth = inside | (dist <= radius)
     undecided = near | (np.abs(dist - radius) < step)
-    got = ids_of(engine, "SELECT source_id FROM orrery.sources WHERE "
+    got = ids_of(engine, "SELECT orrery_id FROM orrery.sources WHERE "
                          f"1 = INTERSECTS(CIRCLE(ra, dec, {radius}), "
                          f"POLYGON({', '.join(f'{ra}, {dec}' for ra, dec in poly)}))")
     decided_truth = set(ids[truth & ~undecided].tolist())
@@ -228,7 +228,7 @@ def test_bad_geometry_is_refused_with_a_message(engine):
     with pytest.raises(AdqlError, match="latitude"):
         list(engine.execute("SELECT POINT(10, 95) FROM orrery.sources", maxrec=1).rows)
     with pytest.raises(AdqlError, match="radius"):
-        engine.execute("SELECT source_id FROM orrery.sources WHERE "
+        engine.execute("SELECT orrery_id FROM orrery.sources WHERE "
                        "1 = CONTAINS(POINT(ra, dec), CIRCLE(10, 20, -1))", maxrec=1)
     with pytest.raises(AdqlError, match="hemisphere"):
         engine.execute("SELECT AREA(POLYGON(0, 0, 120, 0, 240, 0, 0, -10, 180, 30)) "

@@ -11,7 +11,7 @@ from lxml import etree
 from jobdesk.localtap import spawn
 
 UWS = "{http://www.ivoa.net/xml/UWS/v1.0}"
-QUERY = "SELECT TOP 50 source_id, ra, dec FROM orrery.sources"
+QUERY = "SELECT TOP 50 orrery_id, ra, dec FROM orrery.sources"
 
 
 def create(http, base, **params):

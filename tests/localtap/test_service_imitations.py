@@ -17,7 +17,7 @@ from jobdesk.localtap.faults import FAULT_NAMES, LIKE_DACHS, FaultSettings
 from test_service_uws import UWS, create, phase, run_and_wait, validate
 
 VOT = "{http://www.ivoa.net/xml/VOTable/v1.3}"
-TOP = "SELECT TOP {n} source_id FROM orrery.sources ORDER BY source_id"
+TOP = "SELECT TOP {n} orrery_id FROM orrery.sources ORDER BY orrery_id"
 ACTIVE = ("PENDING", "QUEUED", "EXECUTING")
 
 

@@ -10,14 +10,14 @@ import pyvo
 from astropy.table import Table
 from pyvo.dal.exceptions import DALOverflowWarning, DALQueryError
 
-QUERY = "SELECT TOP 5 source_id, ra, dec FROM orrery.sources"
+QUERY = "SELECT TOP 5 orrery_id, ra, dec FROM orrery.sources"
 
 
 def test_sync_query(shared_tap):
     service = pyvo.dal.TAPService(shared_tap.url)
     result = service.run_sync(QUERY)   # pyvo/dal/tap.py TAPService.run_sync
     table = result.to_table()
-    assert len(table) == 5 and table.colnames == ["source_id", "ra", "dec"]
+    assert len(table) == 5 and table.colnames == ["orrery_id", "ra", "dec"]
     assert str(table["ra"].unit) == "deg"
     assert result.query_status == "OK"
 
@@ -58,16 +58,16 @@ def test_overflow_is_flagged_and_warned_when_unexpected(tap_factory):
     # client asked for is expected (no warning); a cut by the service's own limit warns.
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        asked = service.run_sync("SELECT source_id FROM orrery.sources", maxrec=3)
+        asked = service.run_sync("SELECT orrery_id FROM orrery.sources", maxrec=3)
     assert asked.query_status == "OVERFLOW" and len(asked) == 3
     assert not any(issubclass(w.category, DALOverflowWarning) for w in caught)
 
     with pytest.warns(DALOverflowWarning):
-        cut = service.run_sync("SELECT source_id FROM orrery.sources")
+        cut = service.run_sync("SELECT orrery_id FROM orrery.sources")
     assert cut.query_status == "OVERFLOW" and len(cut) == 4   # lowered to --max-rec
 
     with pytest.warns(DALOverflowWarning):
-        cut_async = service.run_async("SELECT source_id FROM orrery.sources", maxrec=1000)
+        cut_async = service.run_async("SELECT orrery_id FROM orrery.sources", maxrec=1000)
     assert len(cut_async) == 4   # a larger MAXREC is lowered to the service maximum
 
 

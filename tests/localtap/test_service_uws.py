@@ -12,7 +12,7 @@ from lxml import etree
 UWS = "{http://www.ivoa.net/xml/UWS/v1.0}"
 XSI_NIL = "{http://www.w3.org/2001/XMLSchema-instance}nil"
 SCHEMAS = Path(__file__).parent / "schemas"
-QUERY = "SELECT TOP 5 source_id, ra, dec FROM orrery.sources"
+QUERY = "SELECT TOP 5 orrery_id, ra, dec FROM orrery.sources"
 
 
 class _LocalXlink(etree.Resolver):
@@ -240,7 +240,7 @@ def test_parameter_names_are_case_insensitive(shared_tap, http):
     assert doc.findtext(f"{UWS}phase") == "COMPLETED"
     response = http.get(f"{shared_tap.url}/sync",
                         params={"lAnG": "ADQL", "qUeRy": QUERY, "rEsPoNsEfOrMaT": "csv"})
-    assert response.text.splitlines()[0] == "source_id,ra,dec"
+    assert response.text.splitlines()[0] == "orrery_id,ra,dec"
 
 
 def test_result_download_supports_ranges(shared_tap, http):

@@ -136,7 +136,7 @@ def test_response_format_names():
                                  "votable/b2"])
 def test_http_results_pass_strict_parsing(shared_tap, http, fmt):
     response = http.post(f"{shared_tap.url}/sync", data={
-        "LANG": "ADQL", "QUERY": "SELECT TOP 7 source_id, ra, dec, mag_cyan, class_label "
+        "LANG": "ADQL", "QUERY": "SELECT TOP 7 orrery_id, ra, dec, mag_cyan, class_label "
                                  "FROM orrery.sources", "RESPONSEFORMAT": fmt})
     assert response.status_code == 200
     parsed = _parse(response.content)

@@ -23,8 +23,8 @@ PROCESSES, SUBMISSIONS, QUERIES = (8, 200, 20) if FULL else (4, 30, 6)
 
 
 def queries(n: int) -> list[str]:
-    return [f"SELECT source_id, mag_lime FROM orrery.sources WHERE source_id % {n} = {i} "
-            f"ORDER BY source_id" for i in range(n)]
+    return [f"SELECT orrery_id, mag_lime FROM orrery.sources WHERE orrery_id % {n} = {i} "
+            f"ORDER BY orrery_id" for i in range(n)]
 
 
 def kernel(root: str, url: str, seed: int, start: float, out: str) -> None:

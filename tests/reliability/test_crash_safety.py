@@ -26,7 +26,7 @@ from jobdesk.localtap import spawn
 from reliability_support import FULL, FaultProxy, Rule, check_consistent, server_jobs
 
 RUNS = 200 if FULL else 16
-WARM_UP = "SELECT TOP 10 source_id FROM orrery.sources ORDER BY source_id"
+WARM_UP = "SELECT TOP 10 orrery_id FROM orrery.sources ORDER BY orrery_id"
 SEED = 20240917
 ROWS = 2000
 
@@ -107,8 +107,8 @@ def test_kill_anywhere_then_resubmit(world, figures):
     failures = []
     finished_first = 0
     for i, (name, rule_args, delay) in enumerate(plan(RUNS, span)):
-        query = (f"SELECT source_id, ra, dec FROM orrery.sources WHERE source_id % 97 <> {i} "
-                 f"ORDER BY source_id")
+        query = (f"SELECT orrery_id, ra, dec FROM orrery.sources WHERE orrery_id % 97 <> {i} "
+                 f"ORDER BY orrery_id")
         label = f"run {i}: kill {name}" + (f" ({delay:.2f} s)" if rule_args is None else "")
         try:
             with figures.case("kills", name):

@@ -31,10 +31,10 @@ ROWS = 3000
 _serial = itertools.count(1)
 
 
-def fresh_query(columns: str = "source_id, ra, dec, mag_lime") -> str:
+def fresh_query(columns: str = "orrery_id, ra, dec, mag_lime") -> str:
     """A query no other case in this session sends (a different key and a different server job)."""
-    return (f"SELECT {columns} FROM orrery.sources WHERE source_id > {next(_serial)} "
-            f"ORDER BY source_id")
+    return (f"SELECT {columns} FROM orrery.sources WHERE orrery_id > {next(_serial)} "
+            f"ORDER BY orrery_id")
 
 
 @pytest.fixture(scope="module")
@@ -61,7 +61,7 @@ def reference_ids(tap, query: str) -> list[int]:
                                                      "QUERY": query}, timeout=60)
     answer.raise_for_status()
     import io
-    return [int(v) for v in parse_single_table(io.BytesIO(answer.content)).array["source_id"]]
+    return [int(v) for v in parse_single_table(io.BytesIO(answer.content)).array["orrery_id"]]
 
 
 def outcome(desk: Desk, url: str, query: str, *, timeout: float = 90):
@@ -82,7 +82,7 @@ def assert_clear(exc: BaseException) -> None:
 
 def assert_correct(tap, job, query: str) -> None:
     assert job.phase == phases.COMPLETED
-    assert list(job.table()["source_id"]) == reference_ids(tap, query)
+    assert list(job.table()["orrery_id"]) == reference_ids(tap, query)
 
 
 # --- status codes and resets at each step of a job ---------------------------------------------

@@ -21,7 +21,7 @@ from jobdesk.errors import JobdeskError
 from jobdesk.groups import layout
 from jobdesk.localtap import serve
 
-QUERY = "SELECT TOP {n} source_id, ra, dec FROM orrery.sources ORDER BY source_id"
+QUERY = "SELECT TOP {n} orrery_id, ra, dec FROM orrery.sources ORDER BY orrery_id"
 
 
 @pytest.fixture(scope="module")

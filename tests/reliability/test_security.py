@@ -54,15 +54,15 @@ def world(tmp_path_factory):
                 FaultProxy(tap.url) as proxy:
             url = proxy.url.replace("http://", f"http://jd-user:{URL_PASSWORD}@")
             desk = Desk(root, session=secret_session(), attempts=3, wait_window=1)
-            ok = desk.submit(url, "SELECT TOP 5 source_id FROM orrery.sources ORDER BY source_id")
+            ok = desk.submit(url, "SELECT TOP 5 orrery_id FROM orrery.sources ORDER BY orrery_id")
             ok.wait(progress=False)
             # A service that quotes the request (headers and all) in its error answers.
             proxy.add(Rule("GET", r"/tap/async/\w+", action="echo", code=500, times=2))
-            echoed = desk.submit(url, "SELECT TOP 6 source_id FROM orrery.sources "
-                                      "ORDER BY source_id")
+            echoed = desk.submit(url, "SELECT TOP 6 orrery_id FROM orrery.sources "
+                                      "ORDER BY orrery_id")
             echoed.wait(progress=False)
             proxy.add(Rule("POST", r"/tap/async$", action="echo", code=400, times=1))
-            for adql in ("SELECT TOP 7 source_id FROM orrery.sources ORDER BY source_id",
+            for adql in ("SELECT TOP 7 orrery_id FROM orrery.sources ORDER BY orrery_id",
                          "SELECT no_such_column FROM orrery.sources"):
                 try:
                     desk.submit(url, adql).wait(progress=False)
@@ -71,11 +71,11 @@ def world(tmp_path_factory):
             # Basic auth on a second desk over the same root.
             basic = requests.Session()
             basic.auth = ("jd-user", PASSWORD)
-            Desk(root, session=basic).submit(tap.url, "SELECT TOP 8 source_id FROM "
-                                             "orrery.sources ORDER BY source_id").wait(
+            Desk(root, session=basic).submit(tap.url, "SELECT TOP 8 orrery_id FROM "
+                                             "orrery.sources ORDER BY orrery_id").wait(
                                                  progress=False)
-            slow = desk.submit(url, "SELECT TOP 9 source_id FROM orrery.sources "
-                                    "ORDER BY source_id")
+            slow = desk.submit(url, "SELECT TOP 9 orrery_id FROM orrery.sources "
+                                    "ORDER BY orrery_id")
             desk.abort(slow.id)
             documents = [j.provenance() for j in desk.jobs(limit=None)]
             accounts = [j.account() for j in desk.jobs(limit=None) if j.ready]

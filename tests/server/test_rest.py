@@ -27,7 +27,7 @@ T0 = 1_700_000_000.0
 def _record(i: int, **extra) -> dict:
     job_id = hashlib.sha256(f"seeded {i}".encode()).hexdigest()[:16]
     return {"id": job_id, "key": f"{i:064x}", "service": SERVICE_A if i % 2 else SERVICE_B,
-            "adql": f"SELECT TOP {i + 1} * FROM orrery.sources ORDER BY source_id",
+            "adql": f"SELECT TOP {i + 1} * FROM orrery.sources ORDER BY orrery_id",
             "label": f"seeded job {i:04d}", "phase": PHASE_CYCLE[i % len(PHASE_CYCLE)],
             "created": T0 + i, "layer": "personal", "rows": i * 10, "truncated": 0,
             **extra}

@@ -18,8 +18,8 @@ from jobdesk.desk import Desk
 from jobdesk.localtap import serve
 from jupyter_launch import RunningJupyter
 
-QUERY = ("SELECT TOP 7 source_id, ra, dec, mag_lime FROM orrery.sources "
-         "ORDER BY source_id")
+QUERY = ("SELECT TOP 7 orrery_id, ra, dec, mag_lime FROM orrery.sources "
+         "ORDER BY orrery_id")
 
 
 @pytest.fixture(scope="module")
@@ -81,7 +81,7 @@ def test_preview_snippet_and_details_of_a_finished_job(server, desk, quick_tap):
                            headers=server.auth, timeout=30)
     assert preview.status_code == 200, preview.text
     body = preview.json()
-    assert [c["name"] for c in body["columns"]] == ["source_id", "ra", "dec", "mag_lime"]
+    assert [c["name"] for c in body["columns"]] == ["orrery_id", "ra", "dec", "mag_lime"]
     assert next(c for c in body["columns"] if c["name"] == "ra")["unit"] == "deg"
     assert len(body["rows"]) == 3 and body["total_rows"] == 7
     assert body["bytes"] == job.record["result_bytes"]
@@ -97,7 +97,7 @@ def test_preview_snippet_and_details_of_a_finished_job(server, desk, quick_tap):
                          capture_output=True, text=True, timeout=120,
                          env={**os.environ, "JOBDESK_HOME": str(server.desk_root)})
     assert run.returncode == 0, run.stderr
-    assert run.stdout.startswith("7 ['source_id', 'ra', 'dec', 'mag_lime']")
+    assert run.stdout.startswith("7 ['orrery_id', 'ra', 'dec', 'mag_lime']")
 
 
 def test_poller_finishes_a_job_whose_kernel_died(server, quick_tap):
