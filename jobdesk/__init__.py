@@ -9,17 +9,24 @@
 from jobdesk.desk import Desk, Job
 from jobdesk.groups import Group
 from jobdesk.errors import (
-    BadServiceURL, CacheCorrupt, JobAborted, JobdeskError, JobFailed, JobLost,
-    NotRepeatableWarning, QueryRejected, ResultTruncated, ResultUnavailable, ServiceError,
-    ServiceRefused, ServiceResponseInvalid, ServiceUnreachable, StorageFull,
-    TruncatedResultWarning, UploadInvalid, WaitTimeout,
+    BadServiceURL, CacheCorrupt, ConfigError, GroupCacheWarning, IndexBusy, JobAborted,
+    JobdeskError, JobFailed, JobLost, NotRepeatableWarning, PublishRefused, QueryRejected,
+    ResultTruncated, ResultTruncatedWarning, ResultUnavailable, ServiceError, ServiceRefused,
+    ServiceResponseInvalid, ServiceUnreachable, StorageFull, UploadInvalid, WaitTimeout,
+    deprecated_alias as _deprecated_alias,
 )
 
 __version__ = "0.1.0"
 
 __all__ = [
-    "BadServiceURL", "CacheCorrupt", "Desk", "Group", "Job", "JobAborted", "JobdeskError", "JobFailed",
-    "JobLost", "NotRepeatableWarning", "QueryRejected", "ResultTruncated", "ResultUnavailable",
-    "ServiceError", "ServiceRefused", "ServiceResponseInvalid", "ServiceUnreachable",
-    "StorageFull", "TruncatedResultWarning", "UploadInvalid", "WaitTimeout", "__version__",
+    "BadServiceURL", "CacheCorrupt", "ConfigError", "Desk", "Group", "GroupCacheWarning", "IndexBusy",
+    "Job", "JobAborted", "JobdeskError", "JobFailed", "JobLost", "NotRepeatableWarning",
+    "PublishRefused", "QueryRejected", "ResultTruncated", "ResultTruncatedWarning",
+    "ResultUnavailable", "ServiceError", "ServiceRefused", "ServiceResponseInvalid",
+    "ServiceUnreachable", "StorageFull", "UploadInvalid", "WaitTimeout", "__version__",
 ]
+
+
+def __getattr__(name: str):
+    # Old public names (``TruncatedResultWarning``) still resolve, with a DeprecationWarning.
+    return _deprecated_alias(__name__, name, globals())

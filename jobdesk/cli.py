@@ -38,8 +38,8 @@ def _size(n) -> str:
 def _row(job) -> str:
     r = job.record
     rows = "-" if r.get("rows") is None else str(r["rows"])
-    cut = " CUT" if r.get("truncated") else ""
-    return (f"{r['id']}  {r['phase']:<10} {rows:>9}{cut:<4} {_size(r.get('result_bytes')):>9}  "
+    mark = " truncated" if r.get("truncated") else ""
+    return (f"{r['id']}  {r['phase']:<10} {rows:>9}{mark:<10} {_size(r.get('result_bytes')):>9}  "
             f"{_when(r['created'])}  {job.title[:50]}")
 
 
@@ -52,7 +52,7 @@ def cmd_list(args) -> int:
     if not jobs:
         print(f"no jobs recorded in {desk.root}")
         return 0
-    print(f"{'id':<16}  {'phase':<10} {'rows':>9}     {'size':>9}  {'created':<16}  query")
+    print(f"{'id':<16}  {'phase':<10} {'rows':>9}{'':<10} {'size':>9}  {'created':<16}  query")
     for job in jobs:
         print(_row(job))
     total = desk.count(phase=args.phase, service=args.service, text=args.text)
@@ -63,8 +63,11 @@ def cmd_list(args) -> int:
 
 def cmd_show(args) -> int:
     job = _desk(args).job(args.id)
-    if args.json:
+    if args.provenance:
         print(json.dumps(job.provenance(), indent=1))
+        return 0
+    if args.json:   # the record, the same object ``list --json`` prints
+        print(json.dumps(job.record, indent=1))
         return 0
     r = job.record
     for name in ("id", "phase", "service", "job_url", "label", "rows", "truncated",
@@ -136,8 +139,9 @@ def cmd_cache(args) -> int:
         print(json.dumps(summary, indent=1))
         return 0
     for layer in summary["layers"]:
-        print(f"{layer['name']:<12} {layer['entries']:>6} files  {_size(layer['bytes']):>9}  "
-              f"{layer['location']}")
+        results = layer.get("results")
+        count = "?" if results is None else f"{results} result{'' if results == 1 else 's'}"
+        print(f"{layer['name']:<12} {count:>12}  {_size(layer['bytes']):>9}  {layer['location']}")
     return 0
 
 
@@ -170,9 +174,9 @@ def _report(report, args, verb: str) -> int:
     return 1 if report.problems else 0
 
 
-def cmd_group_rebuild(args) -> int:
+def cmd_group_add_to_index(args) -> int:
     desk = _desk(args)
-    added = desk.groups.rebuild_index(desk.index)
+    added = desk.groups.add_to_index(desk.index)
     print(f"{added} group results newly listed in {desk.root}")
     return 0
 
@@ -217,9 +221,10 @@ def parser() -> argparse.ArgumentParser:
     s.add_argument("--json", action="store_true")
     s.set_defaults(func=cmd_list)
 
-    s = sub.add_parser("show", help="one job: record and phase history (--json: provenance)")
+    s = sub.add_parser("show", help="one job: record and phase history")
     s.add_argument("id")
-    s.add_argument("--json", action="store_true")
+    s.add_argument("--json", action="store_true", help="the record, as list --json prints it")
+    s.add_argument("--provenance", action="store_true", help="the provenance record (JSON)")
     s.set_defaults(func=cmd_show)
 
     s = sub.add_parser("submit", help="submit an ADQL query as an async job")
@@ -259,10 +264,13 @@ def parser() -> argparse.ArgumentParser:
     s.add_argument("--json", action="store_true")
     s.set_defaults(func=cmd_cache)
 
-    g = sub.add_parser("group", help="group caches: set up, verify, prune, list in the index")
-    gsub = g.add_subparsers(dest="group_command", required=True)
-    s = gsub.add_parser("rebuild-index", help="list every group result in the local index")
-    s.set_defaults(func=cmd_group_rebuild)
+    g = sub.add_parser("group", help="group caches: set up, verify, prune, add to the index")
+    gsub = g.add_subparsers(dest="group_command", required=True,
+                            metavar="{add-to-index,verify,prune,init}")
+    s = gsub.add_parser("add-to-index", help="list every group result in your personal index")
+    s.set_defaults(func=cmd_group_add_to_index)
+    # The old name, hidden (no help= keeps it out of the listing): scripts that use it still run.
+    gsub.add_parser("rebuild-index").set_defaults(func=cmd_group_add_to_index)
     for name, func, text in (("verify", cmd_group_verify, "check manifests, checksums, modes"),
                              ("prune", cmd_group_prune, "remove what no manifest references")):
         s = gsub.add_parser(name, help=text)

@@ -2,7 +2,7 @@
 
 It starts ``jobdesk.localtap`` on loopback with an invented catalogue, then walks through what a
 user meets: an async job with progress, a kernel killed mid-job and the same server job picked
-up again, a result cut by MAXREC, a bad query's message, and a cache hit with the service down.
+up again, a result truncated by MAXREC, a bad query's message, and a cache hit with the service down.
 The jobs land in the normal desk (``$JOBDESK_HOME``), so the JupyterLab sidebar shows them.
 """
 
@@ -16,7 +16,7 @@ import time
 import warnings
 
 from jobdesk.desk import Desk
-from jobdesk.errors import JobdeskError, ResultTruncated, TruncatedResultWarning
+from jobdesk.errors import JobdeskError, ResultTruncated, ResultTruncatedWarning
 
 CONE = """\
 SELECT orrery_id, ra, dec, mag_lime, parallax
@@ -85,12 +85,12 @@ def run(root=None, rows: int = 20000) -> int:
         print(f"   re-submitted: job {again.id} (same record: {again.id == first_id}); "
               f"server jobs created for it: {created}; rows: {again.rows}")
 
-        _say("3. A result cut by MAXREC is never served as complete", BIG + "   -- MAXREC=500")
+        _say("3. A result truncated by MAXREC is never served as complete", BIG + "   -- MAXREC=500")
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
             cut = desk.submit(url, BIG, maxrec=500, label="all sources, capped").wait()
         for w in caught:
-            if issubclass(w.category, TruncatedResultWarning):
+            if issubclass(w.category, ResultTruncatedWarning):
                 print(f"   warning: {w.message}")
         try:
             cut.table()

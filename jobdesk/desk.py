@@ -23,7 +23,7 @@ from jobdesk import uploads as upload_tables
 from jobdesk.errors import (
     BadServiceURL, CacheCorrupt, GroupCacheWarning, JobAborted, JobdeskError, JobFailed, JobLost,
     NotRepeatableWarning, QueryRejected, ResultTruncated, ResultUnavailable, ServiceRefused,
-    ServiceResponseInvalid, ServiceUnreachable, TruncatedResultWarning, WaitTimeout,
+    ServiceResponseInvalid, ServiceUnreachable, ResultTruncatedWarning, WaitTimeout,
 )
 from jobdesk.groups import GroupCaches
 from jobdesk.index import Index, this_process
@@ -185,10 +185,14 @@ class Desk:
         return self.index.forget(job_id)
 
     def cache_summary(self) -> dict:
+        """What the caches hold. ``entries`` counts files; ``results`` counts results (a
+        result's VOTable and its Parquet copy are one result; a group's manifest is one)."""
         entries, size = self.store.usage()
-        return {"entries": entries, "bytes": size, "root": str(self.root),
+        results = sum(1 for sha in self.index.result_hashes() if self.store.has(sha))
+        groups = [{**layer, "results": layer.get("entries")} for layer in self.groups.summary()]
+        return {"entries": entries, "results": results, "bytes": size, "root": str(self.root),
                 "layers": [{"name": "personal", "kind": "personal", "location": str(self.root),
-                            "entries": entries, "bytes": size}] + self.groups.summary()}
+                            "entries": entries, "results": results, "bytes": size}] + groups}
 
     def publish(self, job_id: str, *, group: str | None = None) -> str:
         """Share a finished, complete result with ``group`` (default: the first read-write
@@ -253,7 +257,7 @@ class Desk:
 
     def _copied_here(self, record: dict) -> bool:
         """Whether a finished record's files are in the personal store; a record listed from a
-        group cache (``jobdesk group rebuild-index``) gets them now, verified, or is marked LOST."""
+        group cache (``jobdesk group add-to-index``) gets them now, verified, or is marked LOST."""
         if (record["phase"] != phases.COMPLETED or not record.get("parquet_sha256")
                 or record.get("layer") in (None, "personal")
                 or self.store.has(record["parquet_sha256"])):
@@ -383,8 +387,9 @@ class Desk:
         return found[0] if found else None
 
     def _drive(self, record: dict, *, deadline: float | None, once: bool = False,
-               on_status=None) -> dict:
-        """Wait on the service (up to ``deadline``) and fetch the result once it is COMPLETED."""
+               on_status=None, on_transfer=None) -> dict:
+        """Wait on the service (up to ``deadline``) and fetch the result once it is COMPLETED;
+        ``on_transfer(done_bytes, total_bytes_or_None)`` follows the download."""
         job_id = record["id"]
         remote = self._remote(record["service"])
 
@@ -413,7 +418,7 @@ class Desk:
                                      known=self._last_status.get(record["job_url"]))
             self._last_status[record["job_url"]] = status
             if status.phase == phases.COMPLETED:
-                self._fetch(record, status, remote)
+                self._fetch(record, status, remote, on_transfer=on_transfer)
             elif status.phase == phases.ERROR:
                 message = status.error_summary or ""
                 try:
@@ -448,14 +453,18 @@ class Desk:
             self.index.set_service_info(service, info)
         return info
 
-    def _fetch(self, record: dict, status, remote: Remote) -> None:
+    def _fetch(self, record: dict, status, remote: Remote, *, on_transfer=None) -> None:
         """Stream the result to disk, make the Parquet copy, register both atomically."""
         job_id = record["id"]
         url = status.result_url or record["job_url"].rstrip("/") + "/results/result"
         raw = self.store.temp(".vot")
         table = self.store.temp(".parquet")
         try:
-            got = remote.download(url, raw)
+            total: list[int | None] = [None]
+            got = remote.download(
+                url, raw, on_size=lambda size: total.__setitem__(0, size),
+                on_progress=None if on_transfer is None else (
+                    lambda done: on_transfer(done, total[0])))
             meta = {"jobdesk_key": record["key"], "service": record["service"],
                     "adql": record["adql"], "job_url": record["job_url"]}
             if (record.get("fmt") or "votable").lower().startswith(("csv", "text/csv")):
@@ -489,8 +498,8 @@ class Desk:
         if not truncated:
             self._publish_quietly(job_id)
         if truncated:
-            warnings.warn(TruncatedResultWarning(
-                f"job {job_id}: the result was cut at {summary.rows} rows "
+            warnings.warn(ResultTruncatedWarning(
+                f"job {job_id}: the result was truncated at {summary.rows} rows "
                 f"(MAXREC={record.get('maxrec')}, or a service limit); it is incomplete"),
                 stacklevel=3)
 
@@ -590,7 +599,11 @@ class Job:
                                 if display is not None:
                                     display.update(status.phase, time.monotonic() - t0,
                                                    record.get("rows"))
-                            self.desk._drive(record, deadline=slice_end, on_status=shown)
+                            def fetched(done, total):
+                                if display is not None:
+                                    display.transfer(done, total)
+                            self.desk._drive(record, deadline=slice_end, on_status=shown,
+                                             on_transfer=fetched)
                         finally:
                             self.desk.index.release(self.id, self.desk.owner)
                     else:
@@ -627,7 +640,7 @@ class Job:
             raise ResultUnavailable(f"job {self.id} has no result yet (phase {r['phase']})")
         if r.get("truncated") and not allow_truncated:
             raise ResultTruncated(
-                f"job {self.id}: the result was cut at {r['rows']} rows "
+                f"job {self.id}: the result was truncated at {r['rows']} rows "
                 f"(MAXREC={r.get('maxrec')} or a service limit); it is not the full answer",
                 rows=r.get("rows"), service=r["service"])
         if not self.desk._copied_here(r):  # listed from a group cache, not fetched yet

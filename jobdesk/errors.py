@@ -117,7 +117,7 @@ class WaitTimeout(JobdeskError, TimeoutError):
 
 
 class ResultTruncated(JobdeskError):
-    """The result was cut (MAXREC, a service limit, or a time or size limit): it is incomplete."""
+    """The result was truncated (MAXREC, a service limit, or a time or size limit): incomplete."""
 
     hint = ("raise maxrec (or narrow the query) and submit again; "
             "pass allow_truncated=True to use the partial rows knowingly")
@@ -202,9 +202,32 @@ class NotRepeatableWarning(UserWarning):
     """The query may answer differently when run again (TOP without ORDER BY, RAND, ...)."""
 
 
-class TruncatedResultWarning(UserWarning):
-    """A result was cut by MAXREC or a service limit; it holds fewer rows than the query selects."""
+class ResultTruncatedWarning(UserWarning):
+    """A result was truncated by MAXREC or a service limit: fewer rows than the query selects.
+
+    The warning half of :class:`ResultTruncated` (raised when a truncated result is loaded)."""
 
 
 class GroupCacheWarning(UserWarning):
     """A group cache entry was skipped (corrupt, unreadable) or a publish failed; work went on."""
+
+
+# --- old names, kept so user code goes on working -----------------------------------------------
+
+_DEPRECATED = {"TruncatedResultWarning": "ResultTruncatedWarning"}
+
+
+def deprecated_alias(module: str, name: str, namespace: dict):
+    """The object an old public name stands for, with a DeprecationWarning naming the new one
+    (the body of a module ``__getattr__``, PEP 562)."""
+    new = _DEPRECATED.get(name)
+    if new is None:
+        raise AttributeError(f"module {module!r} has no attribute {name!r}")
+    import warnings
+    warnings.warn(f"{module}.{name} is deprecated; use {module}.{new}", DeprecationWarning,
+                  stacklevel=3)
+    return namespace[new]
+
+
+def __getattr__(name: str):
+    return deprecated_alias(__name__, name, globals())

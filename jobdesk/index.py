@@ -220,6 +220,14 @@ class Index:
         with self._lock:
             return self.db.execute(f"SELECT count(*) FROM jobs {where}", args).fetchone()[0]
 
+    def result_hashes(self) -> set[str]:
+        """The Parquet checksums the records point at: one per result (its VOTable and Parquet
+        files are one result), for counting results rather than files."""
+        with self._lock:
+            rows = self.db.execute("SELECT DISTINCT parquet_sha256 FROM jobs "
+                                   "WHERE parquet_sha256 IS NOT NULL").fetchall()
+        return {row[0] for row in rows}
+
     def version(self) -> str:
         """A cheap token that changes whenever any job row changes (for change feeds)."""
         with self._lock:

@@ -416,13 +416,16 @@ class Remote:
         return dict(info)
 
     def download(self, url: str, dest: Path, *,
-                 on_progress: Callable[[int], None] | None = None) -> Downloaded:
+                 on_progress: Callable[[int], None] | None = None,
+                 on_size: Callable[[int | None], None] | None = None) -> Downloaded:
         """Stream ``url`` into ``dest`` (pieces of at most 1 MiB), hashing as it goes; fsync at the end.
 
         A dropped connection resumes with an HTTP Range request where the service advertised
         ``Accept-Ranges: bytes`` (RFC 9110 §14), else the file restarts from zero, both a bounded
         number of times; the sha256 always covers the whole file.  An error document where the
         result should be raises the matching error.  On failure ``dest`` is removed.
+        ``on_progress(bytes_so_far)`` follows the body; ``on_size(total)`` gives the file's
+        full length (None when the service does not say) each time an answer starts.
         """
         dest = Path(dest)
         state: dict[str, Any] = {"written": 0, "hash": _Hasher(), "ranges": False,
@@ -466,6 +469,8 @@ class Remote:
                 elif state["written"]:
                     restart()  # a 200 to a Range request: the whole body comes again
                 state["type"] = response.headers.get("Content-Type")
+                if on_size is not None:
+                    on_size(total)
                 for chunk in _body_pieces(response):
                     handle.write(chunk)
                     state["hash"].update(chunk)

@@ -21,7 +21,7 @@ import astropy.units as u
 
 from jobdesk import (
     Desk, JobLost, NotRepeatableWarning, QueryRejected, ResultTruncated, ServiceError,
-    TruncatedResultWarning, WaitTimeout,
+    ResultTruncatedWarning, WaitTimeout,
 )
 from jobdesk import phases
 from jobdesk.localtap import serve
@@ -196,7 +196,7 @@ def test_not_repeatable_query_warns(tap, desk):
 
 def test_truncated_result_is_never_served_as_complete(tap, desk):
     # DALI 1.1 §4.4.1 (QUERY_STATUS=OVERFLOW after the table) is what the service writes.
-    with pytest.warns(TruncatedResultWarning, match="cut at 50 rows"):
+    with pytest.warns(ResultTruncatedWarning, match="truncated at 50 rows"):
         job = desk.submit(tap.url, "SELECT orrery_id FROM orrery.sources ORDER BY orrery_id",
                           maxrec=50).wait(progress=False)
     assert job.truncated is True and job.rows == 50

@@ -142,7 +142,7 @@ class GroupCaches:
 
     # --- the personal index as a view -------------------------------------------------------
 
-    def rebuild_index(self, index) -> int:
+    def add_to_index(self, index) -> int:
         """List every group result (newest manifest per key) in the personal index, so the
         sidebar shows what the group holds; files are copied, verified, on first use."""
         from jobdesk.groups.maintain import view_records
@@ -153,6 +153,8 @@ class GroupCaches:
                     index.insert(record)
                     added += 1
         return added
+
+    rebuild_index = add_to_index   # the old name (it rebuilt nothing); kept for callers
 
     # --- size -------------------------------------------------------------------------------
 

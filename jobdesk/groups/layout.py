@@ -110,7 +110,9 @@ def build_manifest(record: dict, *, publisher: str, published: float,
         "canonical": record.get("canonical"), "maxrec": record.get("maxrec"),
         "fmt": record.get("fmt"), "scope": record.get("scope"),
         "uploads": record.get("uploads") or {}, "label": record.get("label"),
-        "rows": record["rows"], "overflow": bool(record.get("truncated")),
+        "rows": record["rows"], "truncated": bool(record.get("truncated")),
+        # The same flag under its first name, for members whose jobdesk still reads only that.
+        "overflow": bool(record.get("truncated")),
         "objects": {
             "votable": {"sha256": record["result_sha256"], "bytes": record["result_bytes"]},
             "parquet": {"sha256": record["parquet_sha256"], "bytes": record["parquet_bytes"]},
@@ -150,8 +152,11 @@ def parse_manifest(data: bytes, *, key: str | None = None) -> dict:
     rows = manifest.get("rows")
     if not isinstance(rows, int) or isinstance(rows, bool) or rows < 0:
         raise ManifestInvalid(f"bad row count {rows!r}")
-    if manifest.get("overflow") is not False:
-        raise ManifestInvalid("the result is marked truncated (overflow); never served")
+    # ``truncated`` (older manifests: only ``overflow``) must say False; both, when present.
+    flags = [manifest[name] for name in ("truncated", "overflow") if name in manifest]
+    if not flags or any(flag is not False for flag in flags):
+        raise ManifestInvalid("the result is marked truncated (or not marked complete); "
+                              "never served")
     objects = manifest.get("objects")
     if not isinstance(objects, dict):
         raise ManifestInvalid("no objects")

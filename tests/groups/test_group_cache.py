@@ -14,7 +14,7 @@ import warnings
 import pytest
 
 from jobdesk import Desk, Group, phases
-from jobdesk.errors import GroupCacheWarning, PublishRefused, TruncatedResultWarning
+from jobdesk.errors import GroupCacheWarning, PublishRefused, ResultTruncatedWarning
 from jobdesk.groups import layout, maintain
 from jobdesk.groups.layer import GroupLayer
 
@@ -101,7 +101,7 @@ def test_read_only_layer_never_publishes(tap, tmp_path, place):
 
 def test_only_complete_results_are_published_and_opt_out_is_honoured(tap, tmp_path, place):
     member_a = _desk(tmp_path, "member_a", place.group(readonly=False))
-    with pytest.warns(TruncatedResultWarning):
+    with pytest.warns(ResultTruncatedWarning):
         cut = member_a.submit(tap.url, _query(500), maxrec=20).wait(progress=False)
     assert cut.truncated
     private = member_a.submit(tap.url, _query(40), publish=False).wait(progress=False)
@@ -113,7 +113,8 @@ def test_only_complete_results_are_published_and_opt_out_is_honoured(tap, tmp_pa
     where = member_a.publish(private.id)
     rel = where.split(":", 1)[1]
     manifest = layout.parse_manifest(place.storage.read(rel), key=private.key)
-    assert manifest["rows"] == 40 and manifest["overflow"] is False
+    assert manifest["rows"] == 40 and manifest["truncated"] is False
+    assert manifest["overflow"] is False   # the flag's first name, still written for older readers
     assert manifest["objects"]["votable"]["sha256"] == private.record["result_sha256"]
     assert manifest["objects"]["votable"]["bytes"] == private.record["result_bytes"]
     assert manifest["canonical"] == private.record["canonical"]
@@ -215,10 +216,19 @@ def test_manifest_pointing_at_a_missing_object_is_not_served(tap, tmp_path, plac
         assert len(report.problems) == 1 and "is missing" in report.problems[0]
 
 
-def test_manifest_claiming_overflow_or_newer_format_is_never_served(tap, tmp_path, place):
+def test_manifest_claiming_truncation_or_newer_format_is_never_served(tap, tmp_path, place):
     _, rel = _published(tap, tmp_path, place, 64)
     manifest = json.loads(place.storage.read(rel))
-    place.storage.put_bytes(rel, json.dumps(dict(manifest, overflow=True)).encode())
+    # A manifest of an older writer names the flag only ``overflow``: read in its place.
+    legacy = {k: v for k, v in manifest.items() if k != "truncated"}
+    assert layout.parse_manifest(json.dumps(legacy).encode())["rows"] == manifest["rows"]
+    for name in ("truncated", "overflow"):
+        with pytest.raises(layout.ManifestInvalid, match="marked truncated"):
+            layout.parse_manifest(json.dumps(dict(manifest, **{name: True})).encode())
+    with pytest.raises(layout.ManifestInvalid, match="marked truncated"):
+        layout.parse_manifest(json.dumps({k: v for k, v in legacy.items()
+                                          if k != "overflow"}).encode())
+    place.storage.put_bytes(rel, json.dumps(dict(manifest, truncated=True)).encode())
     _refetches(tap, tmp_path, place, 64, expect="marked truncated", readonly=True)
     place.storage.put_bytes(rel, json.dumps(dict(manifest, format=layout.FORMAT + 1)).encode())
     with pytest.warns(GroupCacheWarning, match="newer than this jobdesk reads"):
@@ -231,8 +241,8 @@ def test_group_listing_in_the_index_fetches_verified_on_first_use(tap, tmp_path,
     good = member_a.submit(tap.url, _query(65)).wait(progress=False)
     member_a.submit(tap.url, _query(66)).wait(progress=False)
     member_b = _desk(tmp_path, "member_b", place.group(readonly=True))
-    added = member_b.groups.rebuild_index(member_b.index)
-    assert added == 2 and member_b.groups.rebuild_index(member_b.index) == 0   # idempotent
+    added = member_b.groups.add_to_index(member_b.index)
+    assert added == 2 and member_b.groups.add_to_index(member_b.index) == 0   # idempotent
     assert {j.record["layer"] for j in member_b.jobs()} == {"lab"}
     before = _requests(tap)
     job = member_b.submit(tap.url, _query(65))
@@ -331,8 +341,10 @@ def test_config_file_and_command_line(tap, tmp_path, capsys):
     assert Desk(root).groups.names == ["lab"]
     assert Desk(root, groups=[]).groups.names == [], "Desk(groups=...) overrides the file"
     capsys.readouterr()
-    assert main(["--root", str(root), "group", "rebuild-index"]) == 0
+    assert main(["--root", str(root), "group", "add-to-index"]) == 0
     assert "1 group results newly listed" in capsys.readouterr().out
+    assert main(["--root", str(root), "group", "rebuild-index"]) == 0   # the old name, hidden
+    assert "0 group results newly listed" in capsys.readouterr().out
     assert main(["--root", str(root), "group", "verify", "--json"]) == 0
     assert json.loads(capsys.readouterr().out)["problems"] == []
     (group_dir / layout.object_path("f" * 64)).parent.mkdir(parents=True, exist_ok=True)

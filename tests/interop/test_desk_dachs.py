@@ -22,7 +22,7 @@ from astropy.table import Table
 
 from jobdesk import Desk
 from jobdesk.errors import (
-    JobAborted, JobFailed, QueryRejected, ResultTruncated, TruncatedResultWarning, WaitTimeout,
+    JobAborted, JobFailed, QueryRejected, ResultTruncated, ResultTruncatedWarning, WaitTimeout,
 )
 
 from interop_support import SLOW, TABLE, TAP_URL, server_jobs_with
@@ -107,7 +107,7 @@ def test_killed_client_reattaches_to_the_same_server_job(tmp_path, marker, http)
 def test_maxrec_overflow_is_truncated_and_refused_as_complete(tmp_path):
     adql = f"SELECT obj_id, ra, dec FROM {TABLE} WHERE quality = 0 ORDER BY obj_id"
     job = Desk(root=tmp_path).submit(TAP_URL, adql, maxrec=50)
-    with pytest.warns(TruncatedResultWarning):
+    with pytest.warns(ResultTruncatedWarning):
         job.wait(timeout=WAIT, progress=False)
     assert job.truncated is True
     with pytest.raises(ResultTruncated):
@@ -124,7 +124,7 @@ def test_rows_equal_to_maxrec_count_as_truncated_because_the_server_says_so(tmp_
     # better from the document, and must not serve it as complete (DESIGN: never as complete).
     job = Desk(root=tmp_path).submit(TAP_URL, f"SELECT obj_id FROM {TABLE} WHERE obj_id <= 7",
                                      maxrec=7)
-    with pytest.warns(TruncatedResultWarning):
+    with pytest.warns(ResultTruncatedWarning):
         job.wait(timeout=WAIT, progress=False)
     assert job.truncated is True and job.rows == 7
     with pytest.raises(ResultTruncated):
