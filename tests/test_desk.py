@@ -374,7 +374,33 @@ def test_cli_lists_shows_and_exports(tap, tmp_path):
     assert job.id in cli("list").stdout
     shown = cli("show", job.id)
     assert "COMPLETED" in shown.stdout and "orrery.sources" in shown.stdout
+    # show --json prints the same kind of object as list --json: the record.
+    record = json.loads(cli("show", job.id, "--json").stdout)
+    assert record == listed[0]
+    provenance = json.loads(cli("show", job.id, "--provenance").stdout)
+    assert provenance != record and provenance["adql"] == record["adql"]
     out = tmp_path / "x.parquet"
     assert cli("export", job.id, str(out)).returncode == 0 and out.exists()
     missing = cli("show", "nope")
     assert missing.returncode == 2 and "no job" in missing.stderr
+
+    # Truncation reads "truncated" in the list, as in the API (``Job.truncated``), never "CUT".
+    with pytest.warns(ResultTruncatedWarning):
+        capped = Desk(root).submit(tap.url, CONE, maxrec=3, label="capped").wait(progress=False)
+    line = next(l for l in cli("list").stdout.splitlines() if l.startswith(capped.id))
+    assert " truncated " in line and "CUT" not in line.upper().replace("TRUNCATED", "")
+    assert " 2 results " in cli("cache").stdout   # two results, four files (VOTable + Parquet)
+
+
+def test_public_errors_are_exported_and_old_names_still_work():
+    import jobdesk
+    from jobdesk import errors
+    for name in ("PublishRefused", "IndexBusy", "ConfigError", "GroupCacheWarning",
+                 "ResultTruncated", "ResultTruncatedWarning"):
+        assert name in jobdesk.__all__ and getattr(jobdesk, name) is getattr(errors, name)
+    assert "TruncatedResultWarning" not in jobdesk.__all__
+    for module in (jobdesk, errors):
+        with pytest.warns(DeprecationWarning, match="use .*ResultTruncatedWarning"):
+            assert module.TruncatedResultWarning is errors.ResultTruncatedWarning
+    with pytest.raises(AttributeError):
+        jobdesk.NoSuchName
