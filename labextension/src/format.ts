@@ -1,9 +1,38 @@
 /**
- * Small pure formatting helpers shared by the list and the details view.
+ * Small pure formatting helpers shared by the list and the details view, and the phase table.
  */
 
-/** Phases after which nothing more happens on the service (UWS 1.1 §2.1.3, plus our LOST). */
-export const TERMINAL = new Set(['COMPLETED', 'ERROR', 'ABORTED', 'ARCHIVED', 'LOST']);
+/**
+ * Every phase the sidebar can meet, in the families the badges, the filter menu and the notebook
+ * card share (jobdesk/progress.py FAMILIES): the UWS 1.1 phases (§2.1.3) plus our own UNSENT,
+ * SUBMITTED, LOST and UNREACHED (the service was never reached, the job never created).
+ */
+export type PhaseFamily = 'waiting' | 'running' | 'done' | 'failed' | 'stopped';
+
+export const PHASE_FAMILY: Readonly<Record<string, PhaseFamily>> = {
+  UNSENT: 'waiting',
+  SUBMITTED: 'waiting',
+  PENDING: 'waiting',
+  QUEUED: 'waiting',
+  HELD: 'waiting',
+  SUSPENDED: 'waiting',
+  UNKNOWN: 'waiting',
+  EXECUTING: 'running',
+  COMPLETED: 'done',
+  ERROR: 'failed',
+  LOST: 'failed',
+  UNREACHED: 'failed',
+  ABORTED: 'stopped',
+  ARCHIVED: 'stopped'
+};
+
+/** The family of a phase; a phase this table does not know yet waits, as UNKNOWN does. */
+export function phaseFamily(phase: string): PhaseFamily {
+  return PHASE_FAMILY[phase] ?? 'waiting';
+}
+
+/** Phases after which nothing more happens on the service (UWS 1.1 §2.1.3, plus ours). */
+export const TERMINAL = new Set(['COMPLETED', 'ERROR', 'ABORTED', 'ARCHIVED', 'LOST', 'UNREACHED']);
 
 /** Phases worth watching: recorded here, waiting, or running on the service. */
 export const ACTIVE = [
@@ -17,16 +46,69 @@ export const ACTIVE = [
   'SUSPENDED'
 ];
 
-/** Filter choices of the phase menu: [label, comma-separated phases]. */
+function family(name: PhaseFamily): string {
+  return Object.keys(PHASE_FAMILY)
+    .filter(phase => PHASE_FAMILY[phase] === name)
+    .join(',');
+}
+
+/**
+ * Filter choices of the phase menu: [label, comma-separated phases]. Besides "all" and
+ * "active", one choice per family, so every phase is under one of them.
+ */
 export const PHASE_FILTERS: Array<[string, string]> = [
   ['All phases', ''],
   ['Active', ACTIVE.join(',')],
-  ['Completed', 'COMPLETED'],
-  ['Failed', 'ERROR,LOST'],
-  ['Aborted', 'ABORTED'],
-  ['Queued', 'UNSENT,SUBMITTED,PENDING,QUEUED,HELD'],
-  ['Executing', 'EXECUTING']
+  ['Waiting', family('waiting')],
+  ['Executing', family('running')],
+  ['Completed', family('done')],
+  ['Failed', family('failed')],
+  ['Aborted or archived', family('stopped')]
 ];
+
+/** What a job not yet executing is doing, in words true to its phase ({t}: how long). */
+const WAITING_WORDS: Readonly<Record<string, string>> = {
+  UNSENT: 'not sent yet, {t}',
+  SUBMITTED: 'sent {t} ago',
+  PENDING: 'pending {t}',
+  QUEUED: 'queued {t}',
+  HELD: 'held {t}',
+  SUSPENDED: 'suspended {t}',
+  UNKNOWN: 'phase unknown, {t}'
+};
+
+/** The times a job's time cell needs (unix seconds). */
+export interface IJobTimes {
+  phase: string;
+  created: number;
+  submitted?: number | null;
+  started?: number | null;
+  finished?: number | null;
+}
+
+/**
+ * "queued 12 s" only while QUEUED ("pending 4 s", "not sent yet, 9 s", ... otherwise), then
+ * "running 3 min 02 s" / "ran 3 min 02 s"; a job that ended before it started "ended after".
+ */
+export function timeWords(job: IJobTimes, now: number): string {
+  const active = !TERMINAL.has(job.phase);
+  const start = job.started || (job.phase === 'EXECUTING' ? job.submitted : null);
+  if (start) {
+    return `${active ? 'running' : 'ran'} ${formatDuration((job.finished || now) - start)}`;
+  }
+  if (active) {
+    const since = job.phase === 'UNSENT' ? job.created : job.submitted || job.created;
+    const words = WAITING_WORDS[job.phase] ?? 'waiting {t}';
+    return words.replace('{t}', formatDuration(now - since));
+  }
+  const took = formatDuration((job.finished || now) - job.created);
+  return job.phase === 'COMPLETED' ? `took ${took}` : `ended after ${took}`;
+}
+
+/** "1 result", "12 results". */
+export function plural(count: number, word: string): string {
+  return `${count.toLocaleString('en-US')} ${word}${count === 1 ? '' : 's'}`;
+}
 
 export function formatBytes(bytes: number | null | undefined): string {
   if (bytes === null || bytes === undefined) {

@@ -1,7 +1,7 @@
 /**
  * The jobdesk JupyterLab extension: a "Job desk" sidebar over the server's REST API, job
  * details in the main area, snippets into notebooks, notifications when jobs finish, and the
- * browser half of the notebook card's Cancel button.
+ * browser half of the notebook card's "Abort job" button.
  */
 import {
   ILayoutRestorer,
@@ -131,7 +131,7 @@ const plugin: JupyterFrontEndPlugin<void> = {
       }
     });
 
-    // The notebook card's Cancel button: the kernel is busy inside wait() and cannot receive
+    // The notebook card's "Abort job" button: the kernel is busy inside wait() and cannot receive
     // the click, so the browser aborts the job through the REST API (see jobdesk/progress.py).
     document.addEventListener(
       'click',

@@ -70,9 +70,16 @@ export interface IPreview {
 }
 
 export interface ICacheSummary {
-  entries: number;
+  entries: number; // files
+  results?: number; // results: a VOTable and its Parquet copy count once
   bytes: number;
-  layers: Array<{ name: string; kind: string; entries: number; bytes: number }>;
+  layers: Array<{
+    name: string;
+    kind: string;
+    entries: number | null;
+    results?: number | null;
+    bytes: number | null;
+  }>;
 }
 
 export interface IFilter {

@@ -13,11 +13,13 @@ import {
   baseName,
   firstLine,
   formatBytes,
-  formatDuration,
   formatRows,
-  hostOf
+  hostOf,
+  phaseFamily,
+  plural,
+  timeWords
 } from './format';
-import { IJobRecord, JobDeskModel } from './model';
+import { ICacheSummary, IJobRecord, JobDeskModel } from './model';
 
 export interface IPanelActions {
   openDetails(job: IJobRecord): void;
@@ -128,11 +130,9 @@ export class JobDeskPanel extends Widget {
     if (model.cache) {
       const cache = document.createElement('div');
       cache.className = 'jd-cache';
-      const layers = model.cache.layers
-        .map(l => `${l.name}: ${l.entries} files, ${formatBytes(l.bytes)}`)
-        .join(' · ');
-      cache.textContent = `Cache: ${layers || `${model.cache.entries} files`}`;
-      cache.title = `list loaded in ${model.lastLoadMs.toFixed(0)} ms`;
+      cache.textContent = cacheWords(model.cache);
+      cache.title = `A result counts once (its VOTable and Parquet copy together). ` +
+        `List loaded in ${model.lastLoadMs.toFixed(0)} ms.`;
       parts.push(cache);
     }
     this.footer.replaceChildren(...parts);
@@ -154,11 +154,11 @@ export class JobDeskPanel extends Widget {
     head.className = 'jd-row-head';
     head.append(phaseBadge(job.phase), text('jd-title', title));
     if (job.truncated) {
-      const cut = text('jd-truncated', 'cut');
-      cut.title = `Truncated: the service stopped at ${job.rows ?? '?'} rows (MAXREC ${
+      const mark = text('jd-truncated', 'truncated');
+      mark.title = `Truncated: the service stopped at ${job.rows ?? '?'} rows (MAXREC ${
         job.maxrec ?? 'default'
       } or a service limit). Not the full answer.`;
-      head.append(cut);
+      head.append(mark);
     }
 
     const facts = document.createElement('div');
@@ -190,10 +190,12 @@ export class JobDeskPanel extends Widget {
     ));
     if (job.phase === 'COMPLETED') {
       tools.append(
-        button('Insert', 'Insert code that loads this result below the active cell', () =>
+        button('Insert snippet', 'Insert code that loads this result below the active cell', () =>
           this.actions.insertSnippet(job)
         ),
-        button('Copy', 'Copy code that loads this result', () => this.actions.copySnippet(job))
+        button('Copy snippet', 'Copy code that loads this result', () =>
+          this.actions.copySnippet(job)
+        )
       );
     }
     if (!TERMINAL.has(job.phase)) {
@@ -211,26 +213,16 @@ export class JobDeskPanel extends Widget {
 
     row.append(head, facts, tools);
     if (job.error && job.phase !== 'COMPLETED') {
-      row.append(text('jd-error', job.error));
+      // An abort (asked for, often by the user) is a note, not an error in red.
+      row.append(text(phaseFamily(job.phase) === 'stopped' ? 'jd-note' : 'jd-error', job.error));
     }
     return row;
   }
 
-  /** "queued 12 s" until the job starts, then "ran 3 min 02 s" (or "running ..."). */
+  /** How long the job has waited or run, in words true to its phase (see `timeWords`). */
   private timeText(job: IJobRecord, node: HTMLElement): void {
-    const now = Date.now() / 1000;
-    const active = !TERMINAL.has(job.phase);
-    const start = job.started || (job.phase === 'EXECUTING' ? job.submitted : null);
-    let words: string;
-    if (start) {
-      words = `${active ? 'running' : 'ran'} ${formatDuration((job.finished || now) - start)}`;
-    } else if (active) {
-      words = `queued ${formatDuration(now - job.created)}`;
-    } else {
-      words = `took ${formatDuration((job.finished || now) - job.created)}`;
-    }
-    node.textContent = words;
-    node.dataset.active = active ? '1' : '';
+    node.textContent = timeWords(job, Date.now() / 1000);
+    node.dataset.active = TERMINAL.has(job.phase) ? '' : '1';
   }
 
   private tick(): void {
@@ -280,9 +272,29 @@ export class JobDeskPanel extends Widget {
 }
 
 export function phaseBadge(phase: string): HTMLElement {
-  const badge = text(`jd-phase jd-phase-${phase.toLowerCase()}`, phase.toLowerCase());
+  const badge = text(
+    `jd-phase jd-phase-${phaseFamily(phase)} jd-phase-${phase.toLowerCase()}`,
+    phase.toLowerCase()
+  );
   badge.title = `UWS phase ${phase}`;
   return badge;
+}
+
+/** "Cached here: 12 results, 4.1 MB · group lab: 3 results, 2.0 MB". */
+export function cacheWords(cache: ICacheSummary): string {
+  const layers = cache.layers.length
+    ? cache.layers
+    : [{ name: 'personal', kind: 'personal', entries: cache.entries, bytes: cache.bytes }];
+  const parts = layers.map(layer => {
+    const count = layer.results ?? layer.entries;
+    const held = count === null || count === undefined
+      ? 'not readable now'
+      : count === 0
+        ? 'no results yet'
+        : `${plural(count, 'result')}, ${formatBytes(layer.bytes)}`;
+    return layer.kind === 'personal' ? `Cached here: ${held}` : `group ${layer.name}: ${held}`;
+  });
+  return parts.join(' · ');
 }
 
 function text(className: string, value: string): HTMLElement {

@@ -121,7 +121,7 @@ def test_the_whole_story(lab, page, taps, tmp_path):
     page.locator('.jp-SideBar [data-id="jobdesk-sidebar"]').wait_for()
     page.get_by_role("tab", name=NOTEBOOK).first.click()
     row(page, done.id).hover()
-    row(page, done.id).get_by_role("button", name="Insert").click()
+    row(page, done.id).get_by_role("button", name="Insert snippet").click()
     cell = page.locator(".jp-Notebook .jp-CodeCell").nth(1)
     cell.get_by_text(f"job('{done.id}')").wait_for(timeout=20_000)
     cell.locator(".jp-InputArea-editor").click()

@@ -113,3 +113,14 @@ def test_poller_finishes_a_job_whose_kernel_died(server, quick_tap):
                                and _job(server, job_id)["parquet_sha256"]), timeout=90)
     assert finished, _job(server, job_id)
     assert _job(server, job_id)["rows"] == 7
+
+
+def test_cache_counts_results_once_not_their_files(server, desk, quick_tap):
+    before = requests.get(server.url("jobdesk/api/cache"), headers=server.auth, timeout=30).json()
+    desk.submit(quick_tap.url, QUERY + " -- counted", label="counted").wait(timeout=60,
+                                                                         progress=False)
+    after = requests.get(server.url("jobdesk/api/cache"), headers=server.auth, timeout=30).json()
+    # One more result: its VOTable and its Parquet copy are two more files, one more result.
+    assert after["entries"] - before["entries"] == 2
+    assert after["results"] - before["results"] == 1
+    assert after["layers"][0]["results"] == after["results"]
