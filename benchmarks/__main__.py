@@ -1,4 +1,4 @@
-"""``python -m benchmarks [--quick] [--json PATH] [--only case1,case3]``
+"""``python -m benchmarks [--quick] [--json PATH] [--only case1,throughput]``
 
 Runs the cases in order, prints one table (case, figure, baseline, ratio, target, met?) and
 writes everything, with the machine's description, as JSON.  ``--quick`` uses sizes that finish
@@ -17,7 +17,7 @@ import traceback
 import warnings
 from pathlib import Path
 
-from benchmarks.common import CaseResult, Context, machine, table
+from benchmarks.common import CASE_NAMES, CaseResult, Context, machine, table
 
 CASES = {
     "case1": ("case1_cache_hit", "cache hit vs re-fetch vs Parquet floor"),
@@ -33,16 +33,19 @@ def main(argv: list[str] | None = None) -> int:
     parser = argparse.ArgumentParser(prog="python -m benchmarks", description=__doc__.splitlines()[2])
     parser.add_argument("--quick", action="store_true", help="small sizes (under a minute)")
     parser.add_argument("--json", type=Path, help="write the results here")
-    parser.add_argument("--only", help="comma-separated cases, e.g. case1,case3")
+    parser.add_argument("--only", help="comma-separated cases by number or name, "
+                                       "e.g. case1,throughput")
     parser.add_argument("--keep", action="store_true", help="keep the run's work directory")
     args = parser.parse_args(argv)
 
     chosen = list(CASES)
     if args.only:
-        chosen = [c.strip() for c in args.only.split(",") if c.strip()]
+        by_name = {name: case for case, name in CASE_NAMES.items()}
+        chosen = [by_name.get(c.strip(), c.strip()) for c in args.only.split(",") if c.strip()]
         unknown = [c for c in chosen if c not in CASES]
         if unknown:
-            parser.error(f"unknown case(s) {', '.join(unknown)}; known: {', '.join(CASES)}")
+            known = ", ".join(f"{case} ({CASE_NAMES[case]})" for case in CASES)
+            parser.error(f"unknown case(s) {', '.join(unknown)}; known: {known}")
 
     def log(text: str) -> None:
         print(text, file=sys.stderr, flush=True)
@@ -57,7 +60,7 @@ def main(argv: list[str] | None = None) -> int:
     try:
         for name in chosen:
             module_name, title = CASES[name]
-            log(f"{name}: {title}")
+            log(f"{name} {CASE_NAMES[name]}: {title}")
             t0 = time.perf_counter()
             try:
                 module = importlib.import_module(f"benchmarks.{module_name}")
@@ -65,12 +68,14 @@ def main(argv: list[str] | None = None) -> int:
             except Exception as exc:  # noqa: BLE001 - one broken case must not hide the others
                 failed.append(name)
                 log(traceback.format_exc())
-                report["cases"][name] = {"title": title, "error": f"{type(exc).__name__}: {exc}"}
+                report["cases"][name] = {"name": CASE_NAMES[name], "title": title,
+                                         "error": f"{type(exc).__name__}: {exc}"}
                 continue
             result.seconds = time.perf_counter() - t0
             log(f"  {name} done in {result.seconds:.1f} s")
             all_rows += result.rows
-            report["cases"][name] = {"title": title, "seconds": result.seconds,
+            report["cases"][name] = {"name": CASE_NAMES[name], "title": title,
+                                     "seconds": result.seconds,
                                      "rows": [r.to_json() for r in result.rows],
                                      "details": result.details}
     finally:

@@ -32,13 +32,51 @@ def cache_dir() -> Path:
     return path
 
 
+# Each case's number and its name (``--only`` takes either); the table prints both.
+CASE_NAMES = {
+    "case1": "cache-hit",
+    "case2": "download-memory",
+    "case3": "throughput",
+    "case4": "completion",
+    "case5": "index-scale",
+    "case6": "keys",
+}
+
+# A comparison word and its opposite: a ratio below 1 is read the other way round, so that
+# "0.0282x sooner" prints as "35.5x later".
+OPPOSITES = {"faster": "slower", "sooner": "later", "fewer": "more", "less memory": "more memory"}
+OPPOSITES.update({b: a for a, b in OPPOSITES.items()})
+
+
+def ratio_words(ratio: float | None, means: str | None) -> str:
+    """``62x faster``, ``35.5x later``, ``1.0x the floor's time``: the ratio as it reads right.
+
+    A comparison (faster, sooner, fewer, less memory) is always said with a factor of at least
+    1, in the direction that is true; a share ("the floor's time", "curl's throughput") is said
+    as it is."""
+    if ratio is None:
+        return "-"
+    means = means or ""
+    if means in OPPOSITES and 0 < ratio < 1:
+        ratio, means = 1 / ratio, OPPOSITES[means]
+    if means in OPPOSITES and round(ratio, 2) == 1:
+        return "about the same"
+    return f"{number(ratio)}x {means}".strip()
+
+
+def case_label(case: str) -> str:
+    """``case4 completion``."""
+    name = CASE_NAMES.get(case)
+    return f"{case} {name}" if name else case
+
+
 @dataclass
 class Row:
     """One measured figure against its baseline.
 
-    ``ratio`` reads as "<ratio>x <ratio_means>", e.g. "62x faster" (baseline time / jobdesk
-    time) or "1.2x the floor's time" (jobdesk time / floor time); ``met`` is None where no
-    target applies.
+    ``ratio`` with ``ratio_means`` reads as "62x faster" (baseline time / jobdesk time) or
+    "1.2x the floor's time" (jobdesk time / floor time); below 1, a comparison is printed the
+    other way round (see ``ratio_words``). ``met`` is None where no target applies.
     """
 
     case: str
@@ -221,9 +259,9 @@ def table(rows: list[Row], *, markdown: bool = False) -> str:
     body = []
     for r in rows:
         base = "-" if r.baseline is None else f"{number(r.baseline, r.unit)} ({r.baseline_name})"
-        ratio = "-" if r.ratio is None else f"{number(r.ratio)}x {r.ratio_means or ''}".strip()
+        ratio = ratio_words(r.ratio, r.ratio_means)
         met = {True: "yes", False: "NO", None: "-"}[r.met]
-        body.append([r.case, r.what, number(r.figure, r.unit), base, ratio, r.target or "-", met])
+        body.append([case_label(r.case), r.what, number(r.figure, r.unit), base, ratio, r.target or "-", met])
     if markdown:
         lines = ["| " + " | ".join(head) + " |", "|" + "---|" * len(head)]
         lines += ["| " + " | ".join(cell.replace("|", "\\|") for cell in row) + " |"

@@ -44,3 +44,16 @@ def test_quick_run_reports_every_case_with_numbers(tmp_path):
     # the printed table names every case too
     for name in CASES:
         assert name in done.stdout
+
+
+def test_ratios_read_the_right_way_round_and_cases_have_names():
+    from benchmarks.common import CASE_NAMES, Row, ratio_words, table
+    # 1.02 s against a loop's 28.8 ms is "35x later", never "0.0282x sooner".
+    assert ratio_words(0.0288 / 1.02, "sooner") == "35.4x later"
+    assert ratio_words(7.44, "sooner") == "7.44x sooner"
+    assert ratio_words(0.5, "fewer") == "2x more"
+    assert ratio_words(1 / 15.7, "less memory") == "15.7x more memory"
+    assert ratio_words(0.679, "curl's throughput") == "0.679x curl's throughput"   # a share
+    assert set(CASE_NAMES) == set(CASES) and len(set(CASE_NAMES.values())) == len(CASES)
+    printed = table([Row("case4", "latency", 1.02, "s", "loop", 0.0288, 0.0288 / 1.02, "sooner")])
+    assert "case4 completion" in printed and "35.4x later" in printed and "sooner" not in printed
