@@ -17,6 +17,7 @@ import requests
 
 from lab_helpers import open_sidebar, start_lab
 from jobdesk.desk import Desk
+from jobdesk.errors import ResultTruncatedWarning
 from jobdesk.localtap import serve
 
 DOCS = Path(__file__).resolve().parents[2] / "docs"
@@ -100,8 +101,20 @@ def test_the_whole_story(lab, page, taps, tmp_path):
     details = page.locator(f"#jobdesk-job-{done.id}")
     details.get_by_text("ORDER BY orrery_id").first.wait_for(timeout=20_000)
 
+    # A user's own abort reads as a note, not in the error red of the failed query.
+    assert row(page, doomed.id).locator(".jd-note").count() == 1
+    assert row(page, doomed.id).locator(".jd-error").count() == 0
+    assert row(page, failed.id).locator(".jd-error").count() == 1
+
     # A few more phases for the picture, then the screenshot of the sidebar.
+    with pytest.warns(ResultTruncatedWarning):
+        capped = desk.submit(quick.url, QUERY.replace("TOP 7", "TOP 40"), maxrec=5,
+                             label="forty asked, five allowed").wait(timeout=60, progress=False)
+    row(page, capped.id).locator(".jd-truncated", has_text="truncated").wait_for(timeout=20_000)
     desk.submit(slow.url, QUERY.replace("TOP 7", "TOP 3"), label="still running")
+    # The footer counts results (a VOTable and its Parquet copy are one), in words.
+    page.locator("#jobdesk-sidebar .jd-cache", has_text="Cached here: 3 results").wait_for(
+        timeout=20_000)
     handle = page.locator("#jp-main-split-panel > .lm-SplitPanel-handle").first
     box = handle.bounding_box()
     if box:  # widen the sidebar for the picture
@@ -110,7 +123,11 @@ def test_the_whole_story(lab, page, taps, tmp_path):
         page.mouse.move(box["x"] + 140, box["y"] + box["height"] / 2, steps=5)
         page.mouse.up()
     page.mouse.move(900, 700)
+    # With a mouse, tools show on hover or focus only: a focused row shows them, others not.
+    details_of = lambda job: row(page, job.id).get_by_role("button", name="Details")  # noqa: E731
+    row(page, done.id).focus()
     page.wait_for_timeout(1500)
+    assert details_of(done).is_visible() and not details_of(capped).is_visible()
     # docs/sidebar.png is refreshed on request only, so a test run leaves the work tree clean.
     shot = (DOCS / "sidebar.png" if os.environ.get("JOBDESK_REFRESH_SCREENSHOT") == "1"
             else tmp_path / "sidebar.png")
@@ -130,3 +147,22 @@ def test_the_whole_story(lab, page, taps, tmp_path):
     page.keyboard.press("Shift+Enter")
     output = page.locator(".jp-Notebook .jp-OutputArea-output").filter(has_text="7 deg")
     output.wait_for(timeout=90_000)
+
+
+def test_touch_screens_always_see_the_row_tools(lab, browser, taps):
+    quick, _ = taps
+    desk = Desk(lab.desk_root, wait_window=2)
+    job = desk.submit(quick.url, QUERY, label="seven bright sources").wait(timeout=60,
+                                                                            progress=False)
+    # A phone-sized touch screen: Chromium's emulation answers (hover: none) there.
+    context = browser.new_context(viewport={"width": 900, "height": 820}, has_touch=True,
+                                  is_mobile=True)
+    try:
+        touch = context.new_page()
+        open_sidebar(touch, lab)
+        assert touch.evaluate("matchMedia('(hover: none)').matches")
+        row(touch, job.id).wait_for(timeout=20_000)
+        for name in ("Details", "Insert snippet", "Copy snippet", "Forget"):
+            assert row(touch, job.id).get_by_role("button", name=name).is_visible(), name
+    finally:
+        context.close()
