@@ -117,8 +117,9 @@ def test_poller_finishes_a_job_whose_kernel_died(server, quick_tap):
 
 def test_cache_counts_results_once_not_their_files(server, desk, quick_tap):
     before = requests.get(server.url("jobdesk/api/cache"), headers=server.auth, timeout=30).json()
-    desk.submit(quick_tap.url, QUERY + " -- counted", label="counted").wait(timeout=60,
-                                                                         progress=False)
+    # A query of its own (a comment alone would be the same cache key as another test's).
+    desk.submit(quick_tap.url, QUERY.replace("TOP 7", "TOP 11"), label="counted").wait(
+        timeout=60, progress=False)
     after = requests.get(server.url("jobdesk/api/cache"), headers=server.auth, timeout=30).json()
     # One more result: its VOTable and its Parquet copy are two more files, one more result.
     assert after["entries"] - before["entries"] == 2
