@@ -579,6 +579,10 @@ class Job:
                         self.desk.abort(self.id)
                         continue
                 if record["phase"] == phases.COMPLETED and record.get("parquet_sha256"):
+                    if display is not None and record.get("truncated"):
+                        display.update(record["phase"], time.monotonic() - t0, record["rows"],
+                                       note="truncated: not the full answer (MAXREC or a "
+                                            "service limit)")
                     return self
                 if record["phase"] in FAILED:
                     raise self._failure(record)

@@ -209,6 +209,14 @@ def test_truncated_result_is_never_served_as_complete(tap, desk):
     assert full.truncated is False and len(full.table()) == ROWS
 
 
+def test_the_progress_display_says_truncated(tap, desk, capsys):
+    with pytest.warns(ResultTruncatedWarning):
+        desk.submit(tap.url, "SELECT orrery_id FROM orrery.sources ORDER BY orrery_id",
+                    maxrec=20).wait()
+    last = capsys.readouterr().err.strip().splitlines()[-1]
+    assert "COMPLETED" in last and "20 rows" in last and "truncated" in last
+
+
 # --- [6] failures -----------------------------------------------------------------------------
 
 

@@ -10,7 +10,8 @@ import {
   formatBytes,
   formatRows,
   formatWhen,
-  hostOf
+  hostOf,
+  phaseFamily
 } from './format';
 import { IJobDetails, IJobRecord, IPreview, JobDeskModel } from './model';
 import { IPanelActions, phaseBadge } from './panel';
@@ -111,7 +112,8 @@ export class JobDetails extends Widget {
       ['Cache', job.parquet_sha256 ? `${job.layer || 'personal'} cache` : 'not cached'],
       ['Notebook', job.notebook || '—'],
       ['Submitted by', [job.user, job.host].filter(Boolean).join(' on ') || '—'],
-      ['Error', job.error || '—'],
+      // An abort's reason is a note; an error is an error.
+      [phaseFamily(job.phase) === 'stopped' ? 'Note' : 'Error', job.error || '—'],
       ['Warnings', (job.warnings || []).join('; ') || '—']
     ];
     const table = document.createElement('table');
