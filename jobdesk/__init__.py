@@ -19,8 +19,8 @@ from jobdesk.errors import (
 __version__ = "0.1.0"
 
 __all__ = [
-    "BadServiceURL", "CacheCorrupt", "ConfigError", "Desk", "Group", "GroupCacheWarning", "IndexBusy",
-    "Job", "JobAborted", "JobdeskError", "JobFailed", "JobLost", "NotRepeatableWarning",
+    "BadServiceURL", "CacheCorrupt", "ConfigError", "Desk", "Group", "GroupCacheWarning",
+    "IndexBusy", "Job", "JobAborted", "JobdeskError", "JobFailed", "JobLost", "NotRepeatableWarning",
     "PublishRefused", "QueryRejected", "ResultTruncated", "ResultTruncatedWarning",
     "ResultUnavailable", "ServiceError", "ServiceRefused", "ServiceResponseInvalid",
     "ServiceUnreachable", "StorageFull", "UploadInvalid", "WaitTimeout", "__version__",

@@ -22,8 +22,8 @@ from jobdesk import keys, phases, provenance, results
 from jobdesk import uploads as upload_tables
 from jobdesk.errors import (
     BadServiceURL, CacheCorrupt, GroupCacheWarning, JobAborted, JobdeskError, JobFailed, JobLost,
-    NotRepeatableWarning, QueryRejected, ResultTruncated, ResultUnavailable, ServiceRefused,
-    ServiceResponseInvalid, ServiceUnreachable, ResultTruncatedWarning, WaitTimeout,
+    NotRepeatableWarning, QueryRejected, ResultTruncated, ResultTruncatedWarning,
+    ResultUnavailable, ServiceRefused, ServiceResponseInvalid, ServiceUnreachable, WaitTimeout,
 )
 from jobdesk.groups import GroupCaches
 from jobdesk.index import Index, this_process

@@ -371,4 +371,6 @@ _PULSE = """<style>
 @media (prefers-reduced-motion: reduce) {
   .jobdesk-pulse > span { animation: none; left: 0; width: 100%; opacity: 0.4; }
 }
-</style><div class="jobdesk-pulse" role="progressbar" aria-label="working, progress unknown"><span></span></div>"""
+</style>
+<div class="jobdesk-pulse" role="progressbar" aria-label="working, progress unknown">
+<span></span></div>"""

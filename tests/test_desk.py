@@ -20,8 +20,8 @@ from astropy.io import fits
 import astropy.units as u
 
 from jobdesk import (
-    Desk, JobLost, NotRepeatableWarning, QueryRejected, ResultTruncated, ServiceError,
-    ResultTruncatedWarning, WaitTimeout,
+    Desk, JobLost, NotRepeatableWarning, QueryRejected, ResultTruncated, ResultTruncatedWarning,
+    ServiceError, WaitTimeout,
 )
 from jobdesk import phases
 from jobdesk.localtap import serve
