@@ -9,21 +9,23 @@
 from jobdesk.desk import Desk, Job
 from jobdesk.groups import Group
 from jobdesk.errors import (
-    BadServiceURL, CacheCorrupt, ConfigError, GroupCacheWarning, IndexBusy, JobAborted,
-    JobdeskError, JobFailed, JobLost, NotRepeatableWarning, PublishRefused, QueryRejected,
-    ResultTruncated, ResultTruncatedWarning, ResultUnavailable, ServiceError, ServiceRefused,
-    ServiceResponseInvalid, ServiceUnreachable, StorageFull, UploadInvalid, WaitTimeout,
+    BadServiceURL, CacheCorrupt, ConfigError, ExportRefused, ExportTargetExists,
+    GroupCacheWarning, IndexBusy, JobAborted, JobdeskError, JobFailed, JobLost,
+    NotRepeatableWarning, PublishRefused, QueryRejected, ResultTruncated, ResultTruncatedWarning,
+    ResultUnavailable, ServiceError, ServiceRefused, ServiceResponseInvalid, ServiceUnreachable,
+    StorageFull, UploadInvalid, WaitTimeout,
     deprecated_alias as _deprecated_alias,
 )
 
 __version__ = "0.1.0"
 
 __all__ = [
-    "BadServiceURL", "CacheCorrupt", "ConfigError", "Desk", "Group", "GroupCacheWarning",
-    "IndexBusy", "Job", "JobAborted", "JobdeskError", "JobFailed", "JobLost", "NotRepeatableWarning",
-    "PublishRefused", "QueryRejected", "ResultTruncated", "ResultTruncatedWarning",
-    "ResultUnavailable", "ServiceError", "ServiceRefused", "ServiceResponseInvalid",
-    "ServiceUnreachable", "StorageFull", "UploadInvalid", "WaitTimeout", "__version__",
+    "BadServiceURL", "CacheCorrupt", "ConfigError", "Desk", "ExportRefused", "ExportTargetExists",
+    "Group", "GroupCacheWarning", "IndexBusy", "Job", "JobAborted", "JobdeskError",
+    "JobFailed", "JobLost", "NotRepeatableWarning", "PublishRefused", "QueryRejected",
+    "ResultTruncated", "ResultTruncatedWarning", "ResultUnavailable", "ServiceError",
+    "ServiceRefused", "ServiceResponseInvalid", "ServiceUnreachable", "StorageFull",
+    "UploadInvalid", "WaitTimeout", "__version__",
 ]
 
 

@@ -122,7 +122,8 @@ def cmd_forget(args) -> int:
 
 
 def cmd_export(args) -> int:
-    written = _desk(args).job(args.id).export(args.path, allow_truncated=args.allow_truncated)
+    written = _desk(args).job(args.id).export(args.path, allow_truncated=args.allow_truncated,
+                                               name=args.name, overwrite=args.overwrite)
     for path in written:
         print(path)
     return 0
@@ -250,10 +251,14 @@ def parser() -> argparse.ArgumentParser:
     s.add_argument("id")
     s.set_defaults(func=cmd_forget)
 
-    s = sub.add_parser("export", help="write a result with provenance (.fits .vot .parquet .csv)")
+    s = sub.add_parser("export", help="write a result with provenance "
+                                      "(.fits .vot .parquet .h5 .csv .ecsv)")
     s.add_argument("id")
     s.add_argument("path")
     s.add_argument("--allow-truncated", action="store_true")
+    s.add_argument("--name", help="the table's path inside an HDF5 file (default jobdesk/<id>)")
+    s.add_argument("--overwrite", action="store_true",
+                   help="replace an existing file (or HDF5 table)")
     s.set_defaults(func=cmd_export)
 
     s = sub.add_parser("account", help="plain-text account of how a result was made")

@@ -31,6 +31,7 @@ from jobdesk.remote import Remote
 from jobdesk.store import Store, stat_stamp
 
 DEFAULT_RUNNING_LIMIT = 4     # jobs per service at once; common practice, no source
+HELD_RETRY = 5.0              # seconds between PHASE=RUN to a HELD job; common practice, no source
 LEASE_SECONDS = 60.0          # a driver renews its lease at least this often
 UNREACHABLE_SLICES = 3        # consecutive failed slices before wait() gives up (job kept)
 FAILED = frozenset({phases.ERROR, phases.ABORTED, phases.LOST, phases.ARCHIVED})
@@ -394,16 +395,26 @@ class Desk:
         remote = self._remote(record["service"])
 
         ran = False
+        held_run = 0.0
 
         def seen(status) -> None:
-            nonlocal ran
+            nonlocal ran, held_run
             if status.phase == phases.PENDING and not ran:
                 ran = True  # created, but its RUN was lost or never sent (a crash in between)
                 remote.run(record["job_url"])
+            if status.phase == phases.HELD and time.monotonic() - held_run >= HELD_RETRY \
+                    and self._slot_free(record):
+                # UWS 1.1 §2.1.3: HELD waits for the client to send PHASE=RUN again. A HELD job
+                # holds no per-service slot here, so it is re-run only when one is free.
+                held_run = time.monotonic()
+                remote.run(record["job_url"])
             fields = {"phase": status.phase}
-            if status.phase == phases.EXECUTING and not record.get("started"):
+            began = _unix(status.start_time)
+            if began is not None and record.get("started") != began:
+                fields["started"] = record["started"] = began    # the service's own startTime
+            elif status.phase == phases.EXECUTING and not record.get("started"):
                 fields["started"] = record["started"] = time.time()
-            if status.phase != record["phase"]:
+            if status.phase != record["phase"] or "started" in fields:
                 self.index.update(job_id, **fields)
                 record["phase"] = status.phase
             if on_status:
@@ -438,6 +449,11 @@ class Desk:
             self.index.update(job_id, requests_add=remote.requests)
             self._announce(job_id)
         return self.index.get(job_id)
+
+    def _slot_free(self, record: dict) -> bool:
+        """Whether the per-service limit lets one more of this desk's jobs run now."""
+        limit = self.limits.get(record["service"], DEFAULT_RUNNING_LIMIT)
+        return self.index.count(phase=sorted(phases.RUNNING), service=record["service"]) < limit
 
     def _capabilities(self, service: str) -> dict:
         """The service's VOSI capabilities, read once per service and kept in the index.
@@ -490,6 +506,9 @@ class Desk:
         server = {k: v for k, v in summary.infos.items()
                   if k in ("server_software", "publisher", "request_date", "citation")}
         server["capabilities"] = self._capabilities(record["service"])
+        # The service's own job times (UWS 1.1 §2.2.1), for the provenance's start and end.
+        server.update({k: v for k, v in (("start_time", status.start_time),
+                                         ("end_time", status.end_time)) if v})
         self.index.update(job_id, phase=phases.COMPLETED, finished=time.time(),
                           rows=summary.rows, truncated=int(truncated), result_sha256=raw_sha,
                           result_bytes=got.bytes, result_stat=stat_stamp(raw_path),
@@ -685,12 +704,20 @@ class Job:
         """A short plain-text account of how the table was made, for a paper's data section."""
         return provenance.account(self.provenance())
 
-    def export(self, path, *, allow_truncated: bool = False) -> list[Path]:
-        """Write the result to ``path`` (FITS, VOTable, Parquet, CSV by suffix) with its
-        provenance embedded, and a W3C PROV-JSON sidecar ``<path>.prov.json``."""
-        from jobdesk.export import export
+    def export(self, path, *, allow_truncated: bool = False, fmt: str | None = None,
+               name: str | None = None, overwrite: bool = False) -> list[Path]:
+        """Write the result to ``path`` (FITS, VOTable, Parquet, HDF5, CSV, ECSV by suffix or
+        ``fmt``) with its provenance embedded, and a W3C PROV-JSON sidecar that names the
+        file's SHA-256. ``name`` is the table's path inside an HDF5 file (default
+        ``jobdesk/<job id>``); an existing file or HDF5 table is replaced only with
+        ``overwrite=True``. A value the format cannot hold raises ``ExportRefused`` and
+        nothing is written (see ``jobdesk.export``)."""
+        from jobdesk.export import FORMATS, export
         table = self.table(allow_truncated=allow_truncated)
-        return export(table, self.provenance(), path)
+        kind = (fmt or FORMATS.get(Path(path).suffix.lower()) or "").lower()
+        if kind == "hdf5" and name is None:
+            name = f"jobdesk/{self.id}"
+        return export(table, self.provenance(), path, fmt=fmt, name=name, overwrite=overwrite)
 
     def snippet(self) -> str:
         """Python that loads this result in a notebook."""
@@ -703,6 +730,19 @@ class Job:
         """The first rows and the column descriptions, JSON-safe, without loading everything."""
         path = self._result_path(allow_truncated=True)
         return results.preview(path, rows=rows) | {"bytes": self.record.get("result_bytes")}
+
+
+def _unix(text: str | None) -> float | None:
+    """An ISO 8601 time from a job document as unix seconds; None when absent or unreadable."""
+    if not text:
+        return None
+    try:
+        moment = _dt.datetime.fromisoformat(text.strip().replace("Z", "+00:00"))
+    except ValueError:
+        return None
+    if moment.tzinfo is None:
+        moment = moment.replace(tzinfo=_dt.timezone.utc)   # UWS times are UTC (DALI 1.1 §3.3.3)
+    return moment.timestamp()
 
 
 def _warn_not_repeatable(reasons) -> None:

@@ -146,6 +146,18 @@ class PublishRefused(JobdeskError):
             "(jobdesk.Group(location, readonly=True)); your own cache is unaffected")
 
 
+class ExportRefused(JobdeskError):
+    """A result cannot be written in the chosen format as it is; nothing was written."""
+
+    hint = "choose another format (VOTable and Parquet hold every type a TAP service returns)"
+
+
+class ExportTargetExists(ExportRefused):
+    """The export would replace an existing file, or a table inside an HDF5 file."""
+
+    hint = "pass overwrite=True to replace it, or choose another path"
+
+
 class StorageFull(JobdeskError):
     """The disk holding the cache is full or over quota; nothing half-written was kept."""
 

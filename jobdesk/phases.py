@@ -28,5 +28,6 @@ UWS_PHASES = (PENDING, QUEUED, EXECUTING, COMPLETED, ERROR, ABORTED, UNKNOWN, HE
 TERMINAL = frozenset({COMPLETED, ERROR, ABORTED, ARCHIVED, LOST})
 # Still worth waiting for.
 ACTIVE = frozenset({UNSENT, SUBMITTED, PENDING, QUEUED, EXECUTING, UNKNOWN, HELD, SUSPENDED})
-# Holding one of the service's run slots.
-RUNNING = frozenset({SUBMITTED, QUEUED, EXECUTING, UNKNOWN, HELD, SUSPENDED})
+# Holding one of the service's run slots. HELD does not: the service waits for the client to
+# send RUN again (UWS 1.1 §2.1.3), which jobdesk does only when a slot is free.
+RUNNING = frozenset({SUBMITTED, QUEUED, EXECUTING, UNKNOWN, SUSPENDED})

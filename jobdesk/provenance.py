@@ -18,9 +18,19 @@ PROV_NS = "https://jobdesk.invalid/ns/prov#"
 
 
 def iso(ts: float | None) -> str | None:
+    """Unix seconds as a DALI 1.1 §3.3.3 timestamp: UTC, ISO 8601, ending in ``Z``."""
     if ts is None:
         return None
-    return _dt.datetime.fromtimestamp(ts, _dt.timezone.utc).isoformat(timespec="milliseconds")
+    text = _dt.datetime.fromtimestamp(ts, _dt.timezone.utc).isoformat(timespec="milliseconds")
+    return text.replace("+00:00", "Z")
+
+
+def utc(text: str | None) -> str | None:
+    """A service's ISO 8601 time in the DALI ``Z`` form (``+00:00`` rewritten; others kept)."""
+    if not text:
+        return None
+    text = text.strip()
+    return text[:-6] + "Z" if text.endswith("+00:00") else text
 
 
 def versions() -> dict[str, str]:
@@ -62,7 +72,11 @@ def build(record: dict, history: list[dict], *, columns: list[dict] | None = Non
         "phase_history": [{"phase": h["phase"], "at": iso(h["at"]), "note": h.get("note")}
                           for h in history],
         "created": iso(record.get("created")),
+        "started": iso(record.get("started")),
         "finished": iso(record.get("finished")),
+        # The service's own times from the job document (UWS 1.1 §2.2.1: startTime, endTime).
+        "service_start": utc(server.get("start_time")),
+        "service_end": utc(server.get("end_time")),
         "rows": record.get("rows"),
         "truncated": bool(record.get("truncated")),
         "columns": columns or [],
@@ -78,8 +92,18 @@ def build(record: dict, history: list[dict], *, columns: list[dict] | None = Non
     }
 
 
-def to_prov_json(prov: dict) -> dict:
-    """W3C PROV-JSON: an activity (the job) used a query and generated a result entity."""
+VOPROV_NS = "http://www.ivoa.net/documents/ProvenanceDM/ns/voprov/"
+
+
+def to_prov_json(prov: dict, *, exported: dict | None = None) -> dict:
+    """W3C PROV-JSON: an activity (the job) used a query and generated a result entity.
+
+    Types are qualified names (``prov:QUALIFIED_NAME``, PROV-JSON §2.3) in the ``prov:``,
+    ``voprov:`` (IVOA Provenance DM 1.0) or ``jd:`` namespaces. ``startTime``/``endTime`` are
+    the service's own times when the job document gave them. ``exported`` describes the written
+    file (path, format, sha256, bytes, table): it becomes an entity derived from the result,
+    carrying the file's SHA-256, so the file can be matched to this sidecar.
+    """
     job = f"jd:job-{prov['key'][:16]}"
     result = f"jd:result-{(prov.get('result_sha256') or prov['key'])[:16]}"
     query = f"jd:query-{prov['key'][:16]}"
@@ -90,33 +114,49 @@ def to_prov_json(prov: dict) -> dict:
     def literal(value, kind="xsd:string"):
         return {"$": str(value), "type": kind}
 
-    activity = {"prov:type": literal("jd:TAPJob"), "prov:label": prov.get("label") or "TAP query"}
-    if prov["phase_history"]:
-        activity["prov:startTime"] = prov["phase_history"][0]["at"]
-    if prov.get("finished"):
-        activity["prov:endTime"] = prov["finished"]
+    def qname(value):
+        return {"$": value, "type": "prov:QUALIFIED_NAME"}
+
+    activity = {"prov:type": qname("jd:TAPJob"), "prov:label": prov.get("label") or "TAP query"}
+    start = prov.get("service_start") or prov.get("started")
+    if not start and prov["phase_history"]:
+        start = prov["phase_history"][0]["at"]
+    if start:
+        activity["prov:startTime"] = start
+    end = prov.get("service_end") or prov.get("finished")
+    if end:
+        activity["prov:endTime"] = end
     activity["jd:jobURL"] = literal(prov.get("job_url") or "", "xsd:anyURI")
     activity["jd:phase"] = prov.get("phase") or ""
-    activity["jd:MAXREC"] = literal(prov["parameters"].get("MAXREC"), "xsd:string")
-    entity = {"prov:type": literal("jd:QueryResult"),
+    # Parameters of the activity (Provenance DM 1.0 §2.3): only those that were set.
+    parameters = prov.get("parameters") or {}
+    if parameters.get("MAXREC") is not None:
+        activity["jd:MAXREC"] = literal(int(parameters["MAXREC"]), "xsd:long")
+    if parameters.get("RESPONSEFORMAT"):
+        activity["jd:RESPONSEFORMAT"] = literal(parameters["RESPONSEFORMAT"])
+    activity["jd:LANG"] = literal(parameters.get("LANG") or "ADQL")
+    entity = {"prov:type": qname("voprov:Entity"),
+              "jd:kind": qname("jd:QueryResult"),
               "jd:rows": literal(prov.get("rows") or 0, "xsd:long"),
-              "jd:truncated": literal(str(prov.get("truncated")).lower(), "xsd:boolean"),
+              "jd:truncated": literal(str(bool(prov.get("truncated"))).lower(), "xsd:boolean"),
               "jd:sha256": prov.get("result_sha256") or "",
               "jd:servedFrom": prov.get("served_from") or "personal"}
-    return {
-        "prefix": {"jd": PROV_NS, "xsd": "http://www.w3.org/2001/XMLSchema#"},
-        "entity": {
-            result: entity,
-            query: {"prov:type": literal("jd:ADQLQuery"), "prov:value": prov.get("adql") or "",
-                    "jd:canonical": prov.get("canonical_adql") or "", "jd:key": prov["key"]},
-        },
+    entities = {
+        result: entity,
+        query: {"prov:type": qname("jd:ADQLQuery"), "prov:value": prov.get("adql") or "",
+                "jd:canonical": prov.get("canonical_adql") or "", "jd:key": prov["key"]},
+    }
+    document = {
+        "prefix": {"jd": PROV_NS, "voprov": VOPROV_NS,
+                   "xsd": "http://www.w3.org/2001/XMLSchema#"},
+        "entity": entities,
         "activity": {job: activity},
         "agent": {
-            service: {"prov:type": literal("prov:SoftwareAgent", "prov:QUALIFIED_NAME"),
+            service: {"prov:type": qname("prov:SoftwareAgent"),
                       "prov:location": literal(prov["service"], "xsd:anyURI")},
-            user: {"prov:type": literal("prov:Person", "prov:QUALIFIED_NAME"),
+            user: {"prov:type": qname("prov:Person"),
                    "prov:label": prov.get("user") or "unknown"},
-            software: {"prov:type": literal("prov:SoftwareAgent", "prov:QUALIFIED_NAME"),
+            software: {"prov:type": qname("prov:SoftwareAgent"),
                        "prov:label": "jobdesk " + prov["software"].get("jobdesk", "")},
         },
         "wasGeneratedBy": {"_:gen1": {"prov:entity": result, "prov:activity": job}},
@@ -128,6 +168,19 @@ def to_prov_json(prov: dict) -> dict:
         },
         "wasAttributedTo": {"_:attr1": {"prov:entity": result, "prov:agent": service}},
     }
+    if exported:
+        file_id = f"jd:file-{exported['sha256'][:16]}"
+        file_entity = {"prov:type": qname("jd:ExportedFile"),
+                       "prov:label": exported["path"],
+                       "jd:format": exported["format"],
+                       "jd:sha256": literal(exported["sha256"]),
+                       "jd:bytes": literal(exported["bytes"], "xsd:long")}
+        if exported.get("table"):
+            file_entity["jd:table"] = exported["table"]
+        entities[file_id] = file_entity
+        document["wasDerivedFrom"] = {"_:der1": {"prov:generatedEntity": file_id,
+                                                 "prov:usedEntity": result}}
+    return document
 
 
 def account(prov: dict) -> str:

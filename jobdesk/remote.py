@@ -155,7 +155,8 @@ class Remote:
             form.append(("UPLOAD", f"{name},param:{name}"))
             files.append((name, (f"{name}.xml", bytes(content), "application/x-votable+xml")))
         url = f"{self.base_url}/async"
-        since = (datetime.now(UTC) - timedelta(seconds=120)).isoformat(timespec="seconds")
+        # DALI 1.1 §3.3.3: UTC timestamps end in "Z".
+        since = (datetime.now(UTC) - timedelta(seconds=120)).strftime("%Y-%m-%dT%H:%M:%SZ")
         tries = 0
 
         def attempt() -> requests.Response | str:
@@ -223,7 +224,9 @@ class Remote:
             timeout = (self.timeout, max(0, int(wait)) + self.timeout)
         response = self._request("GET", job_url, params=params or None, timeout=timeout,
                                  lost_on_404=True, what="reading the job")
-        return _job_status(job_url, response.content, self.service)
+        # A relative result link is relative to the document's own (final, redirected) URL
+        # (RFC 3986 §5.1.3: the base URI is the one the representation was retrieved from).
+        return _job_status(job_url, response.content, self.service, base=response.url or job_url)
 
     def wait(self, job_url: str, *, deadline: float | None = None,
              on_status: Callable[[JobStatus], None] | None = None,
@@ -625,8 +628,12 @@ class Remote:
 # --- documents ----------------------------------------------------------------------------------
 
 
-def _job_status(url: str, body: bytes, service: str) -> JobStatus:
-    """Read a UWS job document (UWS 1.1 §2.2.1, schema in the UWS 1.1 appendix)."""
+def _job_status(url: str, body: bytes, service: str, *, base: str | None = None) -> JobStatus:
+    """Read a UWS job document (UWS 1.1 §2.2.1, schema in the UWS 1.1 appendix).
+
+    ``base`` is the URL the document was finally read from (after redirects); relative result
+    links are resolved against it.
+    """
     root = _parse_xml(body, service, "job document")
     if _local(root.tag) != "job":
         raise ServiceResponseInvalid(f"expected a UWS job document, got <{_local(root.tag)}>: "
@@ -655,7 +662,7 @@ def _job_status(url: str, body: bytes, service: str) -> JobStatus:
         named = [href for rid, href in results if rid == "result" and href]
         anyone = [href for _, href in results if href]
         chosen = (named or anyone or [None])[0]
-        result_url = urljoin(url, chosen) if chosen else None
+        result_url = urljoin(base or url, chosen) if chosen else None
     summary = _child(root, "errorSummary")
     return JobStatus(
         url=url, phase=phase.upper(), run_id=_child_text(root, "runId"),

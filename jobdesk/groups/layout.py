@@ -64,7 +64,9 @@ def claim_path(key: str) -> str:
 
 
 def iso(ts: float) -> str:
-    return _dt.datetime.fromtimestamp(ts, _dt.timezone.utc).isoformat(timespec="seconds")
+    """UTC in the DALI 1.1 §3.3.3 form, ending in ``Z``."""
+    text = _dt.datetime.fromtimestamp(ts, _dt.timezone.utc).isoformat(timespec="seconds")
+    return text.replace("+00:00", "Z")
 
 
 # --- group.json: the group's own settings -----------------------------------------------------
