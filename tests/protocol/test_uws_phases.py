@@ -1,0 +1,122 @@
+"""Every UWS 1.1 phase and result-link form, met by the real client over real HTTP.
+
+The service is tests/protocol/uws_server.py, written from UWS 1.1 (IVOA REC 2016-10-24); the
+result is the typed VOTable of tests/exports/typed_votable.py.
+"""
+
+from __future__ import annotations
+
+import sys
+import time
+from pathlib import Path
+
+import pytest
+
+sys.path.insert(0, str(Path(__file__).parents[1] / "exports"))
+
+import typed_votable  # noqa: E402
+from uws_server import UwsServer  # noqa: E402
+
+from jobdesk import Desk, phases  # noqa: E402
+from jobdesk.errors import JobLost  # noqa: E402
+
+
+@pytest.fixture
+def uws():
+    with UwsServer(typed_votable.votable()) as server:
+        yield server
+
+
+@pytest.fixture
+def desk(tmp_path):
+    return Desk(tmp_path / "desk", wait_window=5, attempts=2, timeout=10)
+
+
+def _history(desk, job) -> list[str]:
+    return [h["phase"] for h in desk.index.history(job.id)]
+
+
+def test_held_job_is_sent_run_again_and_completes(uws, desk):
+    job = desk.submit(uws.url, "SELECT * FROM hold_me").wait(timeout=60, progress=False)
+    served = uws.job_for("hold_me")
+    # UWS 1.1 §2.1.3: HELD waits for the client's PHASE=RUN; exactly one more was sent.
+    assert job.phase == phases.COMPLETED and job.rows == typed_votable.ROWS
+    assert len(served.runs) == 2
+    assert phases.HELD in _history(desk, job)
+
+
+def test_held_job_frees_its_slot_and_is_rerun_only_when_one_is_free(uws, tmp_path):
+    desk = Desk(tmp_path / "d", limits={uws.url: 1}, wait_window=5, attempts=2, timeout=10)
+    held = desk.submit(uws.url, "SELECT * FROM hold_first")
+    deadline = time.monotonic() + 10
+    while desk.job(held.id).phase != phases.HELD and time.monotonic() < deadline:
+        desk.step()
+        time.sleep(0.1)
+    assert desk.job(held.id).phase == phases.HELD
+    # With the only slot's job HELD, a second job starts at once instead of waiting (a HELD
+    # job holds no slot: it may stay HELD indefinitely).
+    other = desk.submit(uws.url, "SELECT * FROM plain_second")
+    assert other.phase != phases.LOCAL
+    first_of_other = uws.job_for("plain_second").runs[0]
+    other.wait(timeout=30, progress=False)
+    desk.job(held.id).wait(timeout=60, progress=False)
+    runs = uws.job_for("hold_first").runs
+    assert desk.job(held.id).phase == phases.COMPLETED and len(runs) == 2
+    assert runs[1] > first_of_other    # the re-RUN came after the other job took the slot
+
+
+def test_suspended_job_is_waited_for_not_given_up(uws, desk):
+    job = desk.submit(uws.url, "SELECT * FROM suspend_me").wait(timeout=60, progress=False)
+    seen = _history(desk, job)
+    assert job.phase == phases.COMPLETED
+    assert phases.SUSPENDED in seen and seen.index(phases.SUSPENDED) < seen.index(phases.COMPLETED)
+    # SUSPENDED resumes on the service's side (§2.1.3): no RUN is repeated for it.
+    assert len(uws.job_for("suspend_me").runs) == 1
+
+
+def test_unknown_phase_is_asked_again(uws, desk):
+    job = desk.submit(uws.url, "SELECT * FROM unknown_for_a_while").wait(timeout=60,
+                                                                         progress=False)
+    assert job.phase == phases.COMPLETED
+    assert phases.UNKNOWN in _history(desk, job)
+
+
+def test_archived_job_ends_without_result_and_says_so(uws, desk):
+    job = desk.submit(uws.url, "SELECT * FROM archive_me")
+    with pytest.raises(JobLost) as failure:      # the result is gone: resubmitting is the way
+        job.wait(timeout=60, progress=False)
+    record = desk.job(job.id).record
+    # ARCHIVED: "the job has been archived and results are no longer available" (§2.1.3)
+    assert record["phase"] == phases.ARCHIVED and record["result_sha256"] is None
+    assert "ARCHIVED" in str(failure.value)
+
+
+@pytest.mark.parametrize("script", ["redirect", "relocate", "hostpath", "plain"])
+def test_every_result_link_form_is_followed(uws, desk, script):
+    """Relative after a redirected job URL, absolute to a redirecting path, host-relative,
+    and absolute (UWS 1.1 §2.2.1: the result href may point anywhere; RFC 3986 §5 resolves a
+    relative one against the URL the document came from)."""
+    job = desk.submit(uws.url, f"SELECT * FROM links_{script}").wait(timeout=60, progress=False)
+    assert job.phase == phases.COMPLETED, job.record["error"]
+    assert job.rows == typed_votable.ROWS
+    served = uws.job_for(f"links_{script}")
+    fetched = {p for m, p in uws.log if m == "GET" and served.id in p and "async" not in p
+               and "moved" not in p}
+    expected = {"redirect": set(), "relocate": {f"/tap/stash/{served.id}",
+                                                f"/tap/blob/{served.id}.vot"},
+                "hostpath": {f"/files/{served.id}.vot"}, "plain": set()}[script]
+    assert expected <= fetched
+    if script == "redirect":
+        assert ("GET", f"/tap/moved/{served.id}/results/result") in uws.log
+
+
+def test_every_phase_was_seen_by_the_client(uws, desk):
+    """Across the scripted jobs the client meets every UWS 1.1 phase (§2.1.3), except ERROR
+    and ABORTED, which the embedded service's tests cover."""
+    for word in ("hold", "suspend", "unknown", "plain"):
+        desk.submit(uws.url, f"SELECT * FROM all_{word}").wait(timeout=60, progress=False)
+    job = desk.submit(uws.url, "SELECT * FROM all_archive")
+    with pytest.raises(JobLost):
+        job.wait(timeout=60, progress=False)
+    seen = {h["phase"] for j in desk.jobs(limit=None) for h in desk.index.history(j.id)}
+    assert set(phases.UWS_PHASES) - {phases.ERROR, phases.ABORTED} <= seen | {phases.PENDING}
