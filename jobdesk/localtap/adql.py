@@ -613,7 +613,10 @@ def _infer(node: exp.Expression) -> Column:
 
 
 def _stat(ucd: str | None, word: str) -> str | None:
-    return f"{word};{ucd}" if ucd else None
+    """The column's UCD qualified by a statistic word. UCD1+ 1.5 (IVOA EN) marks stat.mean,
+    stat.min, stat.max as secondary words (flag S): they may not come first, so the column's own
+    (primary) UCD leads, e.g. ``phot.mag;stat.mean``."""
+    return f"{ucd};{word}" if ucd else None
 
 
 def _is_int_literal(text: str) -> bool:

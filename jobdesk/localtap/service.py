@@ -893,16 +893,45 @@ class CapabilitiesHandler(TapHandler):
 
 
 class TablesHandler(TapHandler):
-    async def get(self):
+    async def get(self, name: str | None = None):
         tables = await IOLoop.current().run_in_executor(self.tap._sync_pool, self.tap.engine.tables)
-        self.send_xml(tableset_xml(tables))
+        if name is None:
+            self.send_xml(tableset_xml(tables))
+            return
+        # VOSI 1.1 §3.4: {tables}/{name} answers one vs:Table with its columns, 404 if unknown.
+        wanted = name   # tornado has already unquoted the path argument
+        for table in tables:
+            full = table.name if "." in table.name else f"{table.schema}.{table.name}"
+            if full.lower() == wanted.lower():
+                self.send_xml(table_xml(table, full))
+                return
+        self.set_status(404)
+        self.set_header("Content-Type", "text/plain; charset=utf-8")
+        self.finish(f"no table {wanted!r}; GET {self.base_url()}/tables lists them\n")
 
 
 def capabilities_xml(base: str, faults: Faults) -> str:
     """VOSI 1.1 capabilities with the TAPRegExt 1.0 description of the TAP capability."""
     settings = faults.snapshot()
     geometry = "".join(f"<feature><form>{name}</form></feature>" for name in
-                       ("POINT", "CIRCLE", "BOX", "POLYGON", "CONTAINS", "INTERSECTS", "DISTANCE"))
+                       ("POINT", "CIRCLE", "BOX", "POLYGON", "CONTAINS", "INTERSECTS", "DISTANCE",
+                        "AREA", "CENTROID", "COORD1", "COORD2"))
+    # The optional ADQL 2.1 features the translator accepts (ADQL 2.1 §4, each group's
+    # languageFeatures type; the type URIs are from memory of that section). IN_UNIT, bitwise
+    # operators and user-defined functions are refused, so they are not declared.
+    adql21 = "".join(
+        f'<languageFeatures type="ivo://ivoa.net/std/TAPRegExt#features-adql-{group}">'
+        + "".join(f"<feature><form>{form}</form></feature>" for form in forms)
+        + "</languageFeatures>"
+        for group, forms in (("geo", ("POINT", "CIRCLE", "BOX", "POLYGON", "CONTAINS",
+                                      "INTERSECTS", "DISTANCE", "AREA", "CENTROID", "COORD1",
+                                      "COORD2")),
+                             ("string", ("LOWER", "UPPER", "ILIKE")),
+                             ("sets", ("UNION", "EXCEPT", "INTERSECT")),
+                             ("common-table", ("WITH",)),
+                             ("type", ("CAST",)),
+                             ("conditional", ("COALESCE",)),
+                             ("offset", ("OFFSET",))))
     accessory = "".join(
         f'<capability standardID="ivo://ivoa.net/std/VOSI#{name}">'
         f'<interface xsi:type="vs:ParamHTTP"><accessURL use="full">{base}/{name}</accessURL>'
@@ -923,7 +952,7 @@ def capabilities_xml(base: str, faults: Faults) -> str:
         "<description>ADQL translated to SQLite; see the service documentation for what is "
         "not supported</description>"
         f'<languageFeatures type="ivo://ivoa.net/std/TAPRegExt#features-adqlgeo">{geometry}'
-        "</languageFeatures></language>\n"
+        f"</languageFeatures>{adql21}</language>\n"
         '<outputFormat ivo-id="ivo://ivoa.net/std/TAPRegExt#output-votable-td">'
         "<mime>application/x-votable+xml</mime><alias>votable</alias></outputFormat>\n"
         '<outputFormat ivo-id="ivo://ivoa.net/std/TAPRegExt#output-votable-binary2">'
@@ -951,26 +980,38 @@ def tableset_xml(tables) -> str:
         out.append(f"<schema><name>{xml_text(schema)}</name>")
         for table in members:
             name = table.name if "." in table.name else f"{schema}.{table.name}"
-            out.append(f'<table type="output"><name>{xml_text(name)}</name>')
-            if table.description:
-                out.append(f"<description>{xml_text(table.description)}</description>")
-            for column in table.columns:
-                out.append(f"<column><name>{xml_text(column.name)}</name>")
-                if column.description:
-                    out.append(f"<description>{xml_text(column.description)}</description>")
-                if column.unit:
-                    out.append(f"<unit>{xml_text(column.unit)}</unit>")
-                if column.ucd:
-                    out.append(f"<ucd>{xml_text(column.ucd)}</ucd>")
-                size = column.arraysize or ("*" if column.datatype in ("char", "unicodeChar")
-                                            else None)
-                size_attr = f" arraysize={xml_attr(size)}" if size else ""
-                xtype_attr = f" extendedType={xml_attr(column.xtype)}" if column.xtype else ""
-                out.append(f'<dataType xsi:type="vs:VOTableType"{size_attr}{xtype_attr}>'
-                           f"{xml_text(column.datatype)}</dataType></column>")
-            out.append("</table>")
+            out.append(f'<table type="output">{_table_body(table, name)}</table>')
         out.append("</schema>")
     out.append("</vosi:tableset>\n")
+    return "\n".join(out)
+
+
+def table_xml(table, name: str) -> str:
+    """VOSI 1.1 §3.4 single-table document: a vosi:table root of type vs:Table."""
+    return ('<?xml version="1.0" encoding="UTF-8"?>\n'
+            '<vosi:table xmlns:vosi="http://www.ivoa.net/xml/VOSITables/v1.0" '
+            'xmlns:vs="http://www.ivoa.net/xml/VODataService/v1.1" '
+            'xmlns:xsi="http://www.w3.org/2001/XMLSchema-instance" type="output">'
+            + _table_body(table, name) + "</vosi:table>\n")
+
+
+def _table_body(table, name: str) -> str:
+    out = [f"<name>{xml_text(name)}</name>"]
+    if table.description:
+        out.append(f"<description>{xml_text(table.description)}</description>")
+    for column in table.columns:
+        out.append(f"<column><name>{xml_text(column.name)}</name>")
+        if column.description:
+            out.append(f"<description>{xml_text(column.description)}</description>")
+        if column.unit:
+            out.append(f"<unit>{xml_text(column.unit)}</unit>")
+        if column.ucd:
+            out.append(f"<ucd>{xml_text(column.ucd)}</ucd>")
+        size = column.arraysize or ("*" if column.datatype in ("char", "unicodeChar") else None)
+        size_attr = f" arraysize={xml_attr(size)}" if size else ""
+        xtype_attr = f" extendedType={xml_attr(column.xtype)}" if column.xtype else ""
+        out.append(f'<dataType xsi:type="vs:VOTableType"{size_attr}{xtype_attr}>'
+                   f"{xml_text(column.datatype)}</dataType></column>")
     return "\n".join(out)
 
 
@@ -1016,6 +1057,7 @@ def make_app(tap: LocalTapService) -> tornado.web.Application:
         (r"/tap/availability", AvailabilityHandler, kw),
         (r"/tap/capabilities", CapabilitiesHandler, kw),
         (r"/tap/tables", TablesHandler, kw),
+        (r"/tap/tables/([^/]+)", TablesHandler, kw),
         (r"/_localtap/stats", StatsHandler, kw),
         (r"/_localtap/faults", FaultsHandler, kw),
     ], compress_response=False, serve_traceback=False)
