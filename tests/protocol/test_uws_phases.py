@@ -120,3 +120,27 @@ def test_every_phase_was_seen_by_the_client(uws, desk):
         job.wait(timeout=60, progress=False)
     seen = {h["phase"] for j in desk.jobs(limit=None) for h in desk.index.history(j.id)}
     assert set(phases.UWS_PHASES) - {phases.ERROR, phases.ABORTED} <= seen | {phases.PENDING}
+
+
+def test_provenance_carries_the_services_times_and_no_unset_parameter(uws, desk, tmp_path):
+    import json
+
+    import prov.model
+
+    job = desk.submit(uws.url, "SELECT * FROM prov_plain").wait(timeout=60, progress=False)
+    served = uws.job_for("prov_plain")
+    prov_record = job.provenance()
+    # startTime/endTime as the job document gave them (UWS 1.1 §2.2.1), in the DALI Z form.
+    from uws_server import _iso
+    assert prov_record["service_start"] == _iso(served.started)
+    assert prov_record["service_end"] == _iso(served.ended)
+    assert all(h["at"].endswith("Z") for h in prov_record["phase_history"])
+    _, sidecar = job.export(tmp_path / "r.vot")
+    text = sidecar.read_text()
+    activity = next(iter(json.loads(text)["activity"].values()))
+    assert activity["prov:startTime"] == _iso(served.started)
+    assert activity["prov:endTime"] == _iso(served.ended)
+    assert "jd:MAXREC" not in activity and '"None"' not in text     # MAXREC was never set
+    doc = prov.model.ProvDocument.deserialize(content=text, format="json")   # W3C `prov`
+    (act,) = doc.get_records(prov.model.ProvActivity)
+    assert act.get_startTime().timestamp() == pytest.approx(served.started, abs=0.001)
