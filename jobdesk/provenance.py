@@ -206,10 +206,10 @@ def fits_cards(prov: dict) -> list[tuple[str, str, str]]:
     cards = [
         ("ORIGIN", "jobdesk " + prov["software"].get("jobdesk", ""), "software that fetched it"),
         ("DATE", (prov.get("finished") or "")[:19], "when the job finished (UTC)"),
-        ("JDKEY", prov["key"][:64], "jobdesk cache key (sha256)"),
+        ("JDKEY", prov["key"][:64], ""),           # 64 hex digits fill the card: no comment
         ("JDROWS", str(prov.get("rows")), "rows returned"),
         ("JDTRUNC", "T" if prov.get("truncated") else "F", "result cut by a limit"),
-        ("JDSHA256", (prov.get("result_sha256") or "")[:64], "sha256 of the service's file"),
+        ("JDSHA256", (prov.get("result_sha256") or "")[:64], ""),
     ]
     history = [f"TAP service: {prov['service']}", f"job: {prov.get('job_url')}",
                "ADQL: " + " ".join((prov.get("adql") or "").split())]
