@@ -56,7 +56,7 @@ def test_held_job_frees_its_slot_and_is_rerun_only_when_one_is_free(uws, tmp_pat
     # With the only slot's job HELD, a second job starts at once instead of waiting (a HELD
     # job holds no slot: it may stay HELD indefinitely).
     other = desk.submit(uws.url, "SELECT * FROM plain_second")
-    assert other.phase != phases.LOCAL
+    assert other.phase != phases.UNSENT
     first_of_other = uws.job_for("plain_second").runs[0]
     other.wait(timeout=30, progress=False)
     desk.job(held.id).wait(timeout=60, progress=False)
