@@ -18,7 +18,8 @@ import typed_votable  # noqa: E402
 from uws_server import UwsServer  # noqa: E402
 
 from jobdesk import Desk, phases  # noqa: E402
-from jobdesk.errors import JobLost  # noqa: E402
+from jobdesk.errors import JobAborted, JobFailed, JobLost  # noqa: E402
+from jobdesk.remote import Remote  # noqa: E402
 
 
 @pytest.fixture
@@ -110,16 +111,74 @@ def test_every_result_link_form_is_followed(uws, desk, script):
         assert ("GET", f"/tap/moved/{served.id}/results/result") in uws.log
 
 
+def test_error_carries_the_services_message(uws, desk):
+    job = desk.submit(uws.url, "SELECT * FROM fail_here")
+    with pytest.raises(JobFailed) as failure:
+        job.wait(timeout=60, progress=False)
+    assert desk.job(job.id).phase == phases.ERROR
+    assert "the worker ran out of scratch space" in str(failure.value)
+
+
+def test_abort_by_the_service_is_reported(uws, desk):
+    job = desk.submit(uws.url, "SELECT * FROM cancelled_there")
+    with pytest.raises(JobAborted):
+        job.wait(timeout=60, progress=False)
+    assert desk.job(job.id).phase == phases.ABORTED
+
+
 def test_every_phase_was_seen_by_the_client(uws, desk):
-    """Across the scripted jobs the client meets every UWS 1.1 phase (§2.1.3), except ERROR
-    and ABORTED, which the embedded service's tests cover."""
+    """Across the scripted jobs the client meets every UWS 1.1 phase (§2.1.3)."""
     for word in ("hold", "suspend", "unknown", "plain"):
         desk.submit(uws.url, f"SELECT * FROM all_{word}").wait(timeout=60, progress=False)
-    job = desk.submit(uws.url, "SELECT * FROM all_archive")
-    with pytest.raises(JobLost):
-        job.wait(timeout=60, progress=False)
+    for word, error in (("archive", JobLost), ("fail", JobFailed), ("cancelled", JobAborted)):
+        job = desk.submit(uws.url, f"SELECT * FROM all_{word}")
+        with pytest.raises(error):
+            job.wait(timeout=60, progress=False)
     seen = {h["phase"] for j in desk.jobs(limit=None) for h in desk.index.history(j.id)}
-    assert set(phases.UWS_PHASES) - {phases.ERROR, phases.ABORTED} <= seen | {phases.PENDING}
+    # PENDING is passed before the first read (the client sends RUN right after creating).
+    assert set(phases.UWS_PHASES) <= seen | {phases.PENDING}
+
+
+def test_times_sent_to_the_service_use_the_z_form(uws):
+    """DALI 1.1 §3.3.3: UTC timestamps end in Z (AFTER= of the job list, UWS 1.1 §2.2.2.1)."""
+    from jobdesk import provenance
+    remote = Remote(uws.url, attempts=1, timeout=10)
+    remote.find(run_id="nobody", after=provenance.iso(time.time() - 60))
+    after = [q["AFTER"] for q in uws.queries if "AFTER" in q]
+    assert after and all(a.endswith("Z") and "+00:00" not in a for a in after)
+
+
+def test_the_test_server_follows_the_uws_11_schema(uws, desk):
+    """The test service itself checked against the UWS 1.1 REC schema (schemas/README.md)."""
+    import requests
+    from lxml import etree
+
+    schemas = Path(__file__).parents[1] / "localtap" / "schemas"
+
+    class Saved(etree.Resolver):
+        def resolve(self, url, pubid, context):
+            if "xlink" in url.lower():
+                return self.resolve_filename(str(schemas / "xlink.xsd"), context)
+            return None
+
+    parser = etree.XMLParser(no_network=True)
+    parser.resolvers.add(Saved())
+    schema = etree.XMLSchema(etree.parse(str(schemas / "UWS-1.1.xsd"), parser))
+    for word in ("plain", "fail"):
+        job = desk.submit(uws.url, f"SELECT * FROM schema_{word}")
+        with pytest.raises(JobFailed) if word == "fail" else _nothing():
+            job.wait(timeout=60, progress=False)
+        url = f"{uws.url}/async/{uws.job_for(f'schema_{word}').id}"
+        schema.assertValid(etree.fromstring(requests.get(url, timeout=10).content))
+    schema.assertValid(etree.fromstring(requests.get(f"{uws.url}/async", timeout=10).content))
+
+
+class _nothing:
+    def __enter__(self):
+        return self
+
+    def __exit__(self, *exc):
+        return False
 
 
 def test_provenance_carries_the_services_times_and_no_unset_parameter(uws, desk, tmp_path):

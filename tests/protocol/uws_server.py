@@ -8,6 +8,8 @@ What a job does is chosen by a word in its QUERY parameter (the query text is ne
 - ``suspend``   EXECUTING, then SUSPENDED for a while, then EXECUTING again, then COMPLETED
 - ``archive``   runs, then is ARCHIVED as it ends: results are gone (§2.1.3)
 - ``unknown``   reads UNKNOWN for a moment before running (§2.1.3: "ask again")
+- ``fail``      runs, then ERROR with an errorSummary and an error document at {job}/error
+- ``cancelled`` runs, then the service itself aborts it (ABORTED)
 - ``redirect``  the job URL answers 303 to the job's new home, whose result link is
                 relative ("results/result"): it must be resolved against the new home
 - ``relocate``  the result link points to another path that answers 302 to the bytes
@@ -33,6 +35,7 @@ from xml.sax.saxutils import escape, quoteattr
 UWS_NS = "http://www.ivoa.net/xml/UWS/v1.0"
 XLINK_NS = "http://www.w3.org/1999/xlink"
 STEP = 0.3                  # seconds each scripted phase lasts
+ERROR_MESSAGE = "invented failure: the worker ran out of scratch space"
 ACTIVE = ("PENDING", "QUEUED", "EXECUTING")
 
 
@@ -49,7 +52,8 @@ class _Job:
         self.params = params
         query = params.get("QUERY", "").lower()
         self.script = next((w for w in ("hold", "suspend", "archive", "unknown", "redirect",
-                                        "relocate", "hostpath") if w in query), "plain")
+                                        "relocate", "hostpath", "fail", "cancelled")
+                            if w in query), "plain")
         self.created = time.time()
         self.runs: list[float] = []        # times PHASE=RUN arrived
         self.timeline: list[tuple[float, str]] = [(self.created, "PENDING")]
@@ -79,12 +83,14 @@ class _Job:
         if self.script == "unknown":
             steps = ["UNKNOWN", *steps]
         # "archive": the results are archived before the client could read them.
-        steps.append("ARCHIVED" if self.script == "archive" else "COMPLETED")
+        steps.append({"archive": "ARCHIVED", "fail": "ERROR",
+                      "cancelled": "ABORTED"}.get(self.script, "COMPLETED"))
         kept = [(at, p) for at, p in self.timeline if at <= now]
         self.timeline = kept + [(now + i * STEP, p) for i, p in enumerate(steps)]
         executing = [at for at, p in self.timeline if p == "EXECUTING"]
         self.started = executing[0] if executing else None
-        done = [at for at, p in self.timeline if p in ("COMPLETED", "ARCHIVED")]
+        done = [at for at, p in self.timeline
+                if p in ("COMPLETED", "ARCHIVED", "ERROR", "ABORTED")]
         self.ended = done[0] if done else None
 
     def abort(self) -> None:
@@ -103,6 +109,7 @@ class UwsServer:
         self.wait_cap = wait_cap
         self.jobs: dict[str, _Job] = {}
         self.log: list[tuple[str, str]] = []      # (method, path) of every request
+        self.queries: list[dict[str, str]] = []   # the query parameters of every GET
         self._lock = threading.Lock()
         self._httpd = ThreadingHTTPServer(("127.0.0.1", 0), self._handler())
         self._httpd.daemon_threads = True
@@ -159,6 +166,9 @@ class UwsServer:
             links = (f'<uws:result id="result" xlink:type="simple" xlink:href={quoteattr(href)} '
                      f'mime-type="application/x-votable+xml" size="{len(self.result)}"/>')
         parts.append(f"<uws:results>{links}</uws:results>")
+        if phase == "ERROR":
+            parts.append('<uws:errorSummary type="fatal" hasDetail="true">'
+                         f"<uws:message>{escape(ERROR_MESSAGE)}</uws:message></uws:errorSummary>")
         body = ('<?xml version="1.0" encoding="UTF-8"?>\n'
                 f'<uws:job xmlns:uws="{UWS_NS}" xmlns:xlink="{XLINK_NS}" '
                 'xmlns:xsi="http://www.w3.org/2001/XMLSchema-instance" version="1.1">'
@@ -235,6 +245,7 @@ class UwsServer:
                 path = split.path
                 server.log.append(("GET", path))
                 query = {k.upper(): v[-1] for k, v in parse_qs(split.query).items()}
+                server.queries.append(query)
                 parts = path.strip("/").split("/")
                 if path == "/tap/async":
                     self._send(200, server.job_list())
@@ -256,6 +267,13 @@ class UwsServer:
                         self._wait(job, query)
                         home = f"{server.url}/{'moved' if moved else 'async'}/{job.id}"
                         self._send(200, server.job_document(job, home))
+                    elif rest == ["error"] and job.phase() == "ERROR":
+                        # TAP 1.1 §4.4 / DALI 1.1 §4.4: the error document is a VOTable
+                        self._send(200, (
+                            '<?xml version="1.0" encoding="UTF-8"?><VOTABLE version="1.4" '
+                            'xmlns="http://www.ivoa.net/xml/VOTable/v1.3"><RESOURCE type="results">'
+                            f'<INFO name="QUERY_STATUS" value="ERROR">{escape(ERROR_MESSAGE)}'
+                            "</INFO></RESOURCE></VOTABLE>").encode(), "application/x-votable+xml")
                     elif rest == ["phase"]:
                         self._send(200, job.phase().encode(), "text/plain")
                     elif rest == ["results", "result"] and job.phase() == "COMPLETED":
