@@ -233,7 +233,10 @@ def _write_votable(table, prov, path, **_):
     for col in table.itercols():
         meta = col.meta
         if _kind(col) == "string":
-            meta["_votable_string_dtype"] = meta.get("datatype") or "unicodeChar"
+            datatype = meta.get("datatype") or "unicodeChar"
+            if datatype == "char" and not all(v.isascii() for v in np.asarray(col, dtype=str)):
+                datatype = "unicodeChar"     # VOTable 1.4 §2.1: char holds ASCII only
+            meta["_votable_string_dtype"] = datatype
             meta["_votable_arraysize"] = meta.get("arraysize") or "*"
     vot = from_table(table)
     vot.version = "1.4"

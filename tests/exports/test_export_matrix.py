@@ -349,3 +349,19 @@ def test_sidecar_is_prov_json_tied_to_the_file_by_checksum(cached, tmp_path):
     assert act["prov:startTime"].endswith("Z") and "+00:00" not in text
     # startTime is the service's startTime from the job document, not the local record's.
     assert activity.get_startTime() is not None
+
+
+def test_char_column_with_non_ascii_text_becomes_unicode_char_in_votable(cached, tmp_path):
+    """Some services send UTF-8 in a char FIELD; VOTable 1.4 §2.1 char is ASCII, so the export
+    declares unicodeChar rather than failing half-way or writing an invalid file."""
+    job, table = cached
+    sub = table[["word"]].copy()
+    sub["word"] = ["çà", "b", "", "d", "e", "f"]
+    sub["word"].meta = {"datatype": "char", "arraysize": "*"}
+    from jobdesk.export import export
+    path = export(sub, job.provenance(), tmp_path / "w.vot")[0]
+    VOTABLE_SCHEMA.assertValid(etree.parse(str(path)))
+    from astropy.io.votable import parse
+    votable = parse(str(path), verify="exception").get_first_table()
+    assert votable.fields[0].datatype == "unicodeChar"
+    assert list(votable.to_table()["word"])[:2] == ["çà", "b"]
