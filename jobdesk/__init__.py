@@ -9,7 +9,7 @@
 from jobdesk.desk import Desk, Job
 from jobdesk.groups import Group
 from jobdesk.errors import (
-    BadServiceURL, CacheCorrupt, ConfigError, ExportRefused, ExportTargetExists,
+    BadServiceURL, CacheCorrupt, ConfigError, ExportRefused, ExportTargetExists, ExportWarning,
     GroupCacheWarning, IndexBusy, JobAborted, JobdeskError, JobFailed, JobLost,
     NotRepeatableWarning, PublishRefused, QueryRejected, ResultTruncated, ResultTruncatedWarning,
     ResultUnavailable, ServiceError, ServiceRefused, ServiceResponseInvalid, ServiceUnreachable,
@@ -21,7 +21,7 @@ __version__ = "0.1.0"
 
 __all__ = [
     "BadServiceURL", "CacheCorrupt", "ConfigError", "Desk", "ExportRefused", "ExportTargetExists",
-    "Group", "GroupCacheWarning", "IndexBusy", "Job", "JobAborted", "JobdeskError",
+    "ExportWarning", "Group", "GroupCacheWarning", "IndexBusy", "Job", "JobAborted", "JobdeskError",
     "JobFailed", "JobLost", "NotRepeatableWarning", "PublishRefused", "QueryRejected",
     "ResultTruncated", "ResultTruncatedWarning", "ResultUnavailable", "ServiceError",
     "ServiceRefused", "ServiceResponseInvalid", "ServiceUnreachable", "StorageFull",

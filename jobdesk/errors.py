@@ -224,6 +224,10 @@ class GroupCacheWarning(UserWarning):
     """A group cache entry was skipped (corrupt, unreadable) or a publish failed; work went on."""
 
 
+class ExportWarning(UserWarning):
+    """An export replaced a table that was already in an HDF5 file (``overwrite=True``)."""
+
+
 # --- old names, kept so user code goes on working -----------------------------------------------
 
 _DEPRECATED = {"TruncatedResultWarning": "ResultTruncatedWarning"}

@@ -37,17 +37,13 @@ from pathlib import Path
 import numpy as np
 
 from jobdesk import provenance as prov_mod
-from jobdesk.errors import ExportRefused, ExportTargetExists
+from jobdesk.errors import ExportRefused, ExportTargetExists, ExportWarning
 
 FORMATS = {".fits": "fits", ".fit": "fits", ".vot": "votable", ".xml": "votable",
            ".votable": "votable", ".parquet": "parquet", ".csv": "csv", ".ecsv": "ecsv",
            ".h5": "hdf5", ".hdf5": "hdf5", ".hdf": "hdf5"}
 GEOMETRY = ("point", "circle", "polygon")        # DALI 1.1 §3.3.5-3.3.7
 _COLUMN_KEYS = ("unit", "ucd", "description", "xtype", "utype", "datatype", "arraysize")
-
-
-class ExportWarning(UserWarning):
-    """An export replaced a table that was already in the file (``overwrite=True``)."""
 
 
 def export(table, prov: dict, path: Path | str, *, fmt: str | None = None,
