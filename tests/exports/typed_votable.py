@@ -62,19 +62,6 @@ COLUMNS = [
 ]
 
 
-def value(name: str, row: int):
-    """The expected value of a cell, None for a null (NULL_ROW, all columns but the ints that
-    have no null in TABLEDATA without a VALUES null, and the fixed arrays)."""
-    for col in COLUMNS:
-        if col[0] == name:
-            return col[7][row] if row != NULL_ROW or not _keeps_value(col) else col[7][row]
-    raise KeyError(name)
-
-
-def _keeps_value(col) -> bool:
-    return False
-
-
 def _null(row: int, col) -> bool:
     return row == NULL_ROW
 
