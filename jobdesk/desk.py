@@ -78,6 +78,7 @@ class Desk:
         # fits), renewing the lease between them; the last status read carries over.
         self.drive_slice = wait_window + 1.0
         self._last_status: dict[str, object] = {}
+        self._held_run: dict[str, float] = {}   # job URL -> when RUN was last sent to it HELD
         self._sessions: dict[str, object] = {}
         self.groups = GroupCaches(groups, root=self.root)  # lookup order: personal, then these
 
@@ -395,18 +396,11 @@ class Desk:
         remote = self._remote(record["service"])
 
         ran = False
-        held_run = 0.0
 
         def seen(status) -> None:
-            nonlocal ran, held_run
+            nonlocal ran
             if status.phase == phases.PENDING and not ran:
                 ran = True  # created, but its RUN was lost or never sent (a crash in between)
-                remote.run(record["job_url"])
-            if status.phase == phases.HELD and time.monotonic() - held_run >= HELD_RETRY \
-                    and self._slot_free(record):
-                # UWS 1.1 §2.1.3: HELD waits for the client to send PHASE=RUN again. A HELD job
-                # holds no per-service slot here, so it is re-run only when one is free.
-                held_run = time.monotonic()
                 remote.run(record["job_url"])
             fields = {"phase": status.phase}
             began = _unix(status.start_time)
@@ -417,6 +411,14 @@ class Desk:
             if status.phase != record["phase"] or "started" in fields:
                 self.index.update(job_id, **fields)
                 record["phase"] = status.phase
+            last_run = self._held_run.get(record["job_url"], 0.0)
+            if status.phase == phases.HELD and time.monotonic() - last_run >= HELD_RETRY \
+                    and self._slot_free(record):
+                # UWS 1.1 §2.1.3: HELD waits for the client to send PHASE=RUN again. A HELD job
+                # (recorded as such just above) holds no per-service slot, so it is re-run only
+                # when one is free.
+                self._held_run[record["job_url"]] = time.monotonic()
+                remote.run(record["job_url"])
             if on_status:
                 on_status(status)
 

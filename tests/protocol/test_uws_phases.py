@@ -46,24 +46,33 @@ def test_held_job_is_sent_run_again_and_completes(uws, desk):
     assert phases.HELD in _history(desk, job)
 
 
-def test_held_job_frees_its_slot_and_is_rerun_only_when_one_is_free(uws, tmp_path):
+def test_held_job_frees_its_slot_and_is_rerun_only_when_one_is_free(uws, tmp_path,
+                                                                    monkeypatch):
+    # Not a mock: the pause between RUNs to a HELD job is shortened so that only the slot rule
+    # can hold a RUN back while the other job runs.
+    import jobdesk.desk
+    monkeypatch.setattr(jobdesk.desk, "HELD_RETRY", 0.0)
     desk = Desk(tmp_path / "d", limits={uws.url: 1}, wait_window=5, attempts=2, timeout=10)
-    held = desk.submit(uws.url, "SELECT * FROM hold_first")
+    held = desk.submit(uws.url, "SELECT * FROM hold_thrice")
     deadline = time.monotonic() + 10
-    while desk.job(held.id).phase != phases.HELD and time.monotonic() < deadline:
-        desk.step()
+    while len(uws.job_for("hold_thrice").runs) < 2 and time.monotonic() < deadline:
+        desk.step()          # the slot is free: HELD is answered with RUN (held again)
         time.sleep(0.1)
     assert desk.job(held.id).phase == phases.HELD
     # With the only slot's job HELD, a second job starts at once instead of waiting (a HELD
     # job holds no slot: it may stay HELD indefinitely).
     other = desk.submit(uws.url, "SELECT * FROM plain_second")
     assert other.phase != phases.UNSENT
-    first_of_other = uws.job_for("plain_second").runs[0]
-    other.wait(timeout=30, progress=False)
+    while desk.job(other.id).phase != phases.COMPLETED and time.monotonic() < deadline + 20:
+        desk.step()          # drives both; the HELD one must get no RUN while the other runs
+        time.sleep(0.05)
+    second = uws.job_for("plain_second")
+    busy = (second.runs[0], second.ended)
     desk.job(held.id).wait(timeout=60, progress=False)
-    runs = uws.job_for("hold_first").runs
-    assert desk.job(held.id).phase == phases.COMPLETED and len(runs) == 2
-    assert runs[1] > first_of_other    # the re-RUN came after the other job took the slot
+    runs = uws.job_for("hold_thrice").runs
+    assert desk.job(held.id).phase == phases.COMPLETED and len(runs) == 4
+    assert not [t for t in runs if busy[0] <= t < busy[1]], (runs, busy)
+    assert runs[-1] >= busy[1]
 
 
 def test_suspended_job_is_waited_for_not_given_up(uws, desk):

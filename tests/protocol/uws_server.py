@@ -5,6 +5,7 @@ What a job does is chosen by a word in its QUERY parameter (the query text is ne
 
 - ``hold``      the first PHASE=RUN puts the job in HELD (§2.1.3: "the job is HELD pending
                 execution and will not automatically be executed"); the next RUN runs it
+                (``hold_thrice``: the first three RUNs hold it)
 - ``suspend``   EXECUTING, then SUSPENDED for a while, then EXECUTING again, then COMPLETED
 - ``archive``   runs, then is ARCHIVED as it ends: results are gone (§2.1.3)
 - ``unknown``   reads UNKNOWN for a moment before running (§2.1.3: "ask again")
@@ -74,7 +75,8 @@ class _Job:
         self.runs.append(now)
         if self.phase(now) not in ("PENDING", "HELD"):
             return                          # RUN again to a running job: no change
-        if self.script == "hold" and len(self.runs) == 1:
+        holds = 3 if "hold_thrice" in self.params.get("QUERY", "").lower() else 1
+        if self.script == "hold" and len(self.runs) <= holds:
             self.timeline = [(self.created, "PENDING"), (now, "QUEUED"), (now + STEP, "HELD")]
             return
         steps = ["QUEUED", "EXECUTING"]
