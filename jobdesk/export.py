@@ -36,7 +36,9 @@ from pathlib import Path
 import numpy as np
 
 from jobdesk import provenance as prov_mod
-from jobdesk.errors import ExportRefused, ExportTargetExists, ExportWarning
+from jobdesk.errors import (
+    ExportRefused, ExportTargetExists, ExportWarning, JobdeskError, from_transport,
+)
 
 FORMATS = {".fits": "fits", ".fit": "fits", ".vot": "votable", ".xml": "votable",
            ".votable": "votable", ".parquet": "parquet", ".csv": "csv", ".ecsv": "ecsv",
@@ -67,6 +69,9 @@ def export(table, prov: dict, path: Path | str, *, fmt: str | None = None,
             hint=_HINTS.get(fmt, "choose another format (VOTable and Parquet hold every type)"))
     if fmt == "hdf5":
         name = (name or f"jobdesk/{prov['key'][:12]}").strip("/")
+        if not name or any(part in ("", ".", "..") for part in name.split("/")):
+            raise ExportRefused(f"{name!r} is not a usable table path inside {path.name}",
+                                hint="give name= as group/table, e.g. name='run1/stars'")
         sidecar = path.with_name(f"{path.name}.{name.replace('/', '.')}.prov.json")
     else:
         if name is not None:
@@ -77,17 +82,28 @@ def export(table, prov: dict, path: Path | str, *, fmt: str | None = None,
             raise ExportTargetExists(f"{path} already exists; nothing was written",
                                      hint="pass overwrite=True (jobdesk export --overwrite) to "
                                           "replace it, or choose another name")
-    path.parent.mkdir(parents=True, exist_ok=True)
-    with _atomic(path, copy_existing=(fmt == "hdf5")) as tmp:
-        _WRITERS[fmt](table, prov, tmp, name=name, overwrite=overwrite, target=path)
-        digest, size = _sha256(tmp)
-        exported = {"path": path.name, "format": fmt, "sha256": digest, "bytes": size}
-        if fmt == "hdf5":
-            exported["table"] = "/" + name
-        with _atomic(sidecar) as side:
-            side.write_text(json.dumps(prov_mod.to_prov_json(prov, exported=exported), indent=1),
-                            encoding="utf-8")
-            _fsync(side)
+    try:
+        path.parent.mkdir(parents=True, exist_ok=True)
+        with _atomic(path, copy_existing=(fmt == "hdf5")) as tmp:
+            _WRITERS[fmt](table, prov, tmp, name=name, overwrite=overwrite, target=path)
+            digest, size = _sha256(tmp)
+            exported = {"path": path.name, "format": fmt, "sha256": digest, "bytes": size}
+            if fmt == "hdf5":
+                exported["table"] = "/" + name
+            document = prov_mod.to_prov_json(prov, exported=exported)
+            with _atomic(sidecar) as side:
+                side.write_text(json.dumps(document, indent=1), encoding="utf-8")
+                _fsync(side)
+    except JobdeskError:
+        raise
+    except OSError as exc:          # disk full, permission, not an HDF5 file, ...
+        raise from_transport(exc) if exc.errno else ExportRefused(
+            f"could not write {path.name}: {exc}; nothing was written",
+            hint="check that the path is writable (and, for HDF5, that it is an HDF5 file)"
+        ) from exc
+    except (TypeError, ValueError) as exc:      # a writer met a value its checks did not foresee
+        raise ExportRefused(f"{fmt.upper()} writer refused {path.name}: {exc}; nothing was "
+                            "written") from exc
     return [path, sidecar]
 
 
@@ -105,7 +121,8 @@ _HINTS = {
 def _kind(col) -> str:
     """'string', 'vararray', 'array', 'bool' or 'number'."""
     meta = col.meta or {}
-    if col.dtype.kind in "US" or meta.get("datatype") in ("char", "unicodeChar") and col.ndim == 1:
+    if col.dtype.kind in "US" or (meta.get("datatype") in ("char", "unicodeChar")
+                                  and col.ndim == 1):
         return "string"
     if col.dtype.kind == "O":
         return "vararray"

@@ -365,3 +365,16 @@ def test_char_column_with_non_ascii_text_becomes_unicode_char_in_votable(cached,
     votable = parse(str(path), verify="exception").get_first_table()
     assert votable.fields[0].datatype == "unicodeChar"
     assert list(votable.to_table()["word"])[:2] == ["çà", "b"]
+
+
+def test_hdf5_refuses_a_file_that_is_not_hdf5_and_a_bad_table_path(cached, tmp_path):
+    job, table = cached
+    from jobdesk.export import export
+    other = tmp_path / "notes.h5"
+    other.write_text("not an HDF5 file")
+    with pytest.raises(ExportRefused, match="nothing was written"):
+        export(table[["n_int"]], job.provenance(), other, name="a/b")
+    assert other.read_text() == "not an HDF5 file"
+    with pytest.raises(ExportRefused, match="not a usable table path"):
+        export(table[["n_int"]], job.provenance(), tmp_path / "new.h5", name="a/../b")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["notes.h5"]
