@@ -136,7 +136,7 @@ def test_job_documents_validate_against_the_uws_11_recommendation(shared_tap, ht
 
 
 def test_result_votable_validates_and_aggregate_ucds_pass_the_strict_reader(shared_tap, http,
-                                                                             tables):
+                                                                             tables, tmp_path):
     from astropy.io.votable import parse
     from astropy.io.votable.ucd import check_ucd
 
@@ -151,7 +151,7 @@ def test_result_votable_validates_and_aggregate_ucds_pass_the_strict_reader(shar
             f"FROM {table}")
     answer = http.post(f"{shared_tap.url}/sync", data={"LANG": "ADQL", "QUERY": adql})
     votable_schema.assertValid(etree.fromstring(answer.content))     # IVOA VOTable 1.4 XSD
-    path = Path(shared_tap.state if hasattr(shared_tap, "state") else "/tmp") / "agg.vot"
+    path = tmp_path / "agg.vot"
     path.write_bytes(answer.content)
     with warnings.catch_warnings():
         warnings.simplefilter("error")
