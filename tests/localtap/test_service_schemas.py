@@ -161,3 +161,20 @@ def test_result_votable_validates_and_aggregate_ucds_pass_the_strict_reader(shar
         # may not come first.
         assert check_ucd(field.ucd, check_controlled_vocabulary=True), field.ucd
         assert field.ucd.split(";")[0] == ucd.split(";")[0]
+
+
+def test_error_and_aborted_job_documents_validate(shared_tap, http, tables):
+    schema = _schema("UWS-1.1.xsd")
+    table = tables.findtext(".//table/name")
+    for query, action, wanted in (("SELEKT nothing FROM nowhere", "RUN", "ERROR"),
+                                  (f"SELECT * FROM {table}", "ABORT", "ABORTED")):
+        job_url = http.post(f"{shared_tap.url}/async", allow_redirects=False,
+                            data={"LANG": "ADQL", "QUERY": query}).headers["Location"]
+        http.post(f"{job_url}/phase", data={"PHASE": action})
+        deadline = time.monotonic() + 30
+        while time.monotonic() < deadline:
+            doc = etree.fromstring(http.get(job_url, params={"WAIT": "5"}).content)
+            if doc.findtext("uws:phase", namespaces=NS) == wanted:
+                break
+        schema.assertValid(doc)                      # errorSummary in its place (UWS 1.1)
+        assert doc.findtext("uws:phase", namespaces=NS) == wanted
