@@ -94,6 +94,10 @@ def export(table, prov: dict, path: Path | str, *, fmt: str | None = None,
             with _atomic(sidecar) as side:
                 side.write_text(json.dumps(document, indent=1), encoding="utf-8")
                 _fsync(side)
+                # Both files are complete: the table goes into place first, then (leaving
+                # this block) the sidecar that describes it.
+                _fsync(tmp)
+                os.replace(tmp, path)
     except JobdeskError:
         raise
     except OSError as exc:          # disk full, permission, not an HDF5 file, ...
@@ -406,8 +410,9 @@ def _atomic(path: Path, *, copy_existing: bool = False):
         else:
             tmp.unlink()
         yield tmp
-        _fsync(tmp)
-        os.replace(tmp, path)
+        if tmp.exists():                 # (the caller may have moved it into place itself)
+            _fsync(tmp)
+            os.replace(tmp, path)
     finally:
         tmp.unlink(missing_ok=True)
 
