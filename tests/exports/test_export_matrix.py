@@ -378,3 +378,22 @@ def test_hdf5_refuses_a_file_that_is_not_hdf5_and_a_bad_table_path(cached, tmp_p
     with pytest.raises(ExportRefused, match="not a usable table path"):
         export(table[["n_int"]], job.provenance(), tmp_path / "new.h5", name="a/../b")
     assert sorted(p.name for p in tmp_path.iterdir()) == ["notes.h5"]
+
+
+def test_command_line_adds_tables_to_an_hdf5_file_and_refuses_to_replace_one(cached, tmp_path):
+    import os
+    import subprocess
+
+    job, _ = cached
+    path = tmp_path / "a.h5"
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).parents[2])}
+
+    def cli(*args):
+        return subprocess.run([sys.executable, "-m", "jobdesk.cli", "--root",
+                               str(job.desk.root), "export", job.id, str(path), *args],
+                              capture_output=True, text=True, timeout=120, env=env)
+
+    # The whole result has variable-length arrays, which the HDF5 writer cannot store:
+    refused = cli("--name", "run1/all")
+    assert refused.returncode == 2 and "'counts'" in refused.stderr and not path.exists()
+    assert "what to do" in refused.stderr
