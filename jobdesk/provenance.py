@@ -205,7 +205,10 @@ def fits_cards(prov: dict) -> list[tuple[str, str, str]]:
     """FITS header cards (keyword, value, comment) plus HISTORY lines describing the result."""
     cards = [
         ("ORIGIN", "jobdesk " + prov["software"].get("jobdesk", ""), "software that fetched it"),
-        ("DATE", (prov.get("finished") or "")[:19], "when the job finished (UTC)"),
+        # DATE is the date the HDU was written (FITS 4.0 §4.4.2.1): ours is the export time;
+        # the job's own finish time gets a keyword of our own.
+        ("DATE", _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%S"), "HDU written (UTC)"),
+        ("JDDONE", (prov.get("finished") or "")[:19], "when the job finished (UTC)"),
         ("JDKEY", prov["key"][:64], ""),           # 64 hex digits fill the card: no comment
         ("JDROWS", str(prov.get("rows")), "rows returned"),
         ("JDTRUNC", "T" if prov.get("truncated") else "F", "result cut by a limit"),

@@ -11,6 +11,7 @@ import signal
 import subprocess
 import sys
 import time
+from datetime import datetime, timezone
 
 import numpy as np
 import pytest
@@ -325,6 +326,10 @@ def test_provenance_and_exports(tap, desk, tmp_path):
     written = job.export(out)
     header = fits.getheader(out, 1)
     assert header["JDROWS"] == str(job.rows) and any("orrery" in h for h in header["HISTORY"])
+    # FITS 4.0 §4.4.2.1: DATE is when the HDU was written; the job's end has a key of our own.
+    written_at = datetime.fromisoformat(header["DATE"]).replace(tzinfo=timezone.utc)
+    assert abs((datetime.now(timezone.utc) - written_at).total_seconds()) < 120
+    assert header["JDDONE"] == job.provenance()["finished"][:19]
     # An independent reader of W3C PROV-JSON: the `prov` package.
     import prov.model
     doc = prov.model.ProvDocument.deserialize(content=written[1].read_text(), format="json")
