@@ -63,6 +63,31 @@ class ServiceResponseInvalid(ServiceError):
     hint = "the service may be misconfigured or behind a proxy that rewrites answers; check the URL"
 
 
+class SyncTimeout(ServiceUnreachable):
+    """A short synchronous query (an estimate, a metadata query) ran out of its time limit."""
+
+    hint = "raise the time limit, or narrow the query; the long run goes as an async job anyway"
+
+
+class MetadataUnavailable(ServiceError):
+    """No table metadata: the service cannot be read now and nothing is cached."""
+
+    hint = "check the service URL and your network, then call desk.tables(service) again"
+
+
+class UnknownTable(JobdeskError, KeyError):
+    """The service lists no such table (``suggestions`` holds the closest names)."""
+
+    hint = "list the service's tables with desk.tables(service) or `jobdesk tables SERVICE`"
+
+    def __init__(self, message: str, *, suggestions: list[str] | None = None, **kw):
+        super().__init__(message, **kw)
+        self.suggestions = suggestions or []
+
+    def __str__(self) -> str:
+        return JobdeskError.__str__(self)
+
+
 class BadServiceURL(ServiceError):
     """The service address cannot be used (not http/https, no host)."""
 
@@ -73,9 +98,14 @@ class BadServiceURL(ServiceError):
 
 
 class QueryRejected(JobdeskError):
-    """The service refused the ADQL; the message is the service's own."""
+    """The ADQL was refused, by the local check (``findings`` lists why, with positions) or by
+    the service (its own message; a finding too when the message names a spot)."""
 
-    hint = "fix the query where the service's message points, then submit again"
+    hint = "fix the query where the message points, then submit again"
+
+    def __init__(self, message: str, *, findings: list | None = None, **kw):
+        super().__init__(message, **kw)
+        self.findings = list(findings or [])
 
 
 class UploadInvalid(JobdeskError):
@@ -218,6 +248,15 @@ class ResultTruncatedWarning(UserWarning):
     """A result was truncated by MAXREC or a service limit: fewer rows than the query selects.
 
     The warning half of :class:`ResultTruncated` (raised when a truncated result is loaded)."""
+
+
+class QueryCheckWarning(UserWarning):
+    """The local check of a query found something worth a look (the query was sent anyway)."""
+
+
+class MetadataWarning(UserWarning):
+    """Table metadata came from the cache because the service could not be read, or some of
+    the service's metadata rows were malformed and skipped."""
 
 
 class GroupCacheWarning(UserWarning):

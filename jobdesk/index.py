@@ -87,6 +87,29 @@ def _v3_to_v4(db: sqlite_utils.Database) -> None:
     db.execute("UPDATE phases SET phase = 'UNSENT' WHERE phase = 'LOCAL'")
 
 
+@_migration
+def _add_service_metadata(db: sqlite_utils.Database) -> None:
+    # What each service publishes about its tables (VOSI tables or TAP_SCHEMA), kept with the
+    # time it was read so checks and the sidebar work offline; an FTS5 index for find().
+    db.execute(db.create_table_sql("meta_services", {
+        "service": str, "read_at": float, "source": str, "tables": int, "columns": int,
+        "skipped": str}, pk="service"))
+    db.execute(db.create_table_sql("meta_tables", {
+        "service": str, "name": str, "schema_name": str, "description": str, "nrows": int,
+        "ncols": int, "ord": int, "lname": str, "lshort": str}, pk=("service", "name")))
+    db.execute("CREATE INDEX idx_meta_tables_ord ON meta_tables (service, ord)")
+    db.execute("CREATE INDEX idx_meta_tables_lname ON meta_tables (service, lname)")
+    db.execute("CREATE INDEX idx_meta_tables_lshort ON meta_tables (service, lshort)")
+    db.execute(db.create_table_sql("meta_columns", {
+        "service": str, "table_name": str, "name": str, "datatype": str, "arraysize": str,
+        "xtype": str, "unit": str, "ucd": str, "description": str, "ord": int}))
+    db.execute("CREATE INDEX idx_meta_columns_table ON meta_columns (service, table_name, ord)")
+    # unicode61 splits on '_' and '.', so "mag" finds mag_blue and phot.mag; names weigh most.
+    db.execute("CREATE VIRTUAL TABLE meta_search USING fts5(service UNINDEXED, "
+               "table_name UNINDEXED, column_name UNINDEXED, name, description, unit, ucd, "
+               "tokenize = 'unicode61 remove_diacritics 2')")
+
+
 SCHEMA_VERSION = len(MIGRATIONS)
 BUSY_TIMEOUT_MS = 30_000
 
@@ -364,6 +387,110 @@ class Index:
             conn.execute("INSERT OR REPLACE INTO services (service, info, read_at) "
                          "VALUES (?, ?, ?)", [service, json.dumps(info, sort_keys=True),
                                               time.time()])
+
+    # --- service metadata (see jobdesk.metadata) ------------------------------------------------
+
+    def save_metadata(self, service: str, tables, *, source: str, skipped=()) -> dict:
+        """Replace what is known of ``service``'s tables by ``tables`` (an iterable of dicts with
+        ``name, schema_name, description, nrows`` and ``columns``: a list of column dicts), in
+        one transaction, consuming it as it goes (a large tableset is never all in memory)."""
+        now = time.time()
+        n_tables = n_columns = 0
+        with self._write() as conn:
+            for name in ("meta_tables", "meta_columns", "meta_search"):
+                conn.execute(f"DELETE FROM {name} WHERE service = ?", [service])
+            for t in tables:
+                columns = t.get("columns") or []
+                conn.execute("INSERT OR REPLACE INTO meta_tables (service, name, schema_name, "
+                             "description, nrows, ncols, ord, lname, lshort) "
+                             "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                             [service, t["name"], t.get("schema_name"), t.get("description"),
+                              t.get("nrows"), len(columns), n_tables, t["name"].lower(),
+                              t["name"].rsplit(".", 1)[-1].lower()])
+                conn.execute("INSERT INTO meta_search (service, table_name, column_name, name, "
+                             "description, unit, ucd) VALUES (?, ?, NULL, ?, ?, NULL, NULL)",
+                             [service, t["name"], t["name"], t.get("description") or ""])
+                conn.executemany(
+                    "INSERT INTO meta_columns (service, table_name, name, datatype, arraysize, "
+                    "xtype, unit, ucd, description, ord) VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?)",
+                    [[service, t["name"], c["name"], c.get("datatype"), c.get("arraysize"),
+                      c.get("xtype"), c.get("unit"), c.get("ucd"), c.get("description"), i]
+                     for i, c in enumerate(columns)])
+                conn.executemany(
+                    "INSERT INTO meta_search (service, table_name, column_name, name, "
+                    "description, unit, ucd) VALUES (?, ?, ?, ?, ?, ?, ?)",
+                    [[service, t["name"], c["name"], c["name"], c.get("description") or "",
+                      c.get("unit") or "", c.get("ucd") or ""] for c in columns])
+                n_tables += 1
+                n_columns += len(columns)
+            conn.execute("INSERT OR REPLACE INTO meta_services (service, read_at, source, "
+                         "tables, columns, skipped) VALUES (?, ?, ?, ?, ?, ?)",
+                         [service, now, source, n_tables, n_columns, json.dumps(list(skipped))])
+        return {"service": service, "read_at": now, "source": source, "tables": n_tables,
+                "columns": n_columns, "skipped": list(skipped)}
+
+    def metadata_info(self, service: str | None = None) -> list[dict]:
+        """When each service's metadata was read, from where, and how much (all services
+        when ``service`` is None)."""
+        sql = "SELECT service, read_at, source, tables, columns, skipped FROM meta_services"
+        args: list = []
+        if service is not None:
+            sql += " WHERE service = ?"
+            args.append(service)
+        with self._lock:
+            cur = self.db.execute(sql + " ORDER BY service", args)
+            cols = [d[0] for d in cur.description]
+            rows = [dict(zip(cols, r)) for r in cur.fetchall()]
+        for row in rows:
+            row["skipped"] = json.loads(row["skipped"] or "[]")
+        return rows
+
+    def meta_tables(self, service: str, *, limit: int | None = None, offset: int = 0,
+                    names: list[str] | None = None) -> list[dict]:
+        sql = ("SELECT name, schema_name, description, nrows, ncols FROM meta_tables "
+               "WHERE service = ?")
+        args: list = [service]
+        if names is not None:
+            sql += f" AND name IN ({','.join('?' * len(names))})"
+            args += names
+        sql += " ORDER BY ord"
+        if limit is not None:
+            sql += " LIMIT ? OFFSET ?"
+            args += [int(limit), int(offset)]
+        with self._lock:
+            cur = self.db.execute(sql, args)
+            cols = [d[0] for d in cur.description]
+            return [dict(zip(cols, r)) for r in cur.fetchall()]
+
+    def meta_table_like(self, service: str, name: str) -> list[dict]:
+        """Tables whose full or short name is ``name``, ignoring case (two indexed reads)."""
+        low = name.lower()
+        with self._lock:
+            cur = self.db.execute(
+                "SELECT name, schema_name, description, nrows, ncols FROM meta_tables "
+                "WHERE service = ? AND lname = ? UNION SELECT name, schema_name, description, "
+                "nrows, ncols FROM meta_tables WHERE service = ? AND lshort = ?",
+                [service, low, service, low])
+            cols = [d[0] for d in cur.description]
+            return [dict(zip(cols, r)) for r in cur.fetchall()]
+
+    def meta_columns(self, service: str, table: str) -> list[dict]:
+        with self._lock:
+            cur = self.db.execute(
+                "SELECT name, datatype, arraysize, xtype, unit, ucd, description FROM "
+                "meta_columns WHERE service = ? AND table_name = ? ORDER BY ord", [service, table])
+            cols = [d[0] for d in cur.description]
+            return [dict(zip(cols, r)) for r in cur.fetchall()]
+
+    def meta_find(self, service: str, match: str, *, limit: int = 50) -> list[dict]:
+        """Tables and columns whose names, descriptions, units or UCDs match an FTS5 query;
+        a hit in a name ranks first (bm25 weights: name 10, description 1, unit 2, ucd 3)."""
+        with self._lock:
+            cur = self.db.execute(
+                "SELECT table_name, column_name, bm25(meta_search, 0, 0, 0, 10, 1, 2, 3) AS rank "
+                "FROM meta_search WHERE meta_search MATCH ? AND service = ? "
+                "ORDER BY rank LIMIT ?", [match, service, int(limit)])
+            return [{"table": t, "column": c, "rank": r} for t, c, r in cur.fetchall()]
 
     def referenced_objects(self) -> set[str]:
         """Every checksum some record points at (eviction must keep these files)."""

@@ -41,9 +41,11 @@ from jobdesk.errors import (
     JobdeskError,
     JobFailed,
     JobLost,
+    QueryRejected,
     ServiceRefused,
     ServiceResponseInvalid,
     ServiceUnreachable,
+    SyncTimeout,
     UploadInvalid,
     from_transport,
 )
@@ -417,6 +419,52 @@ class Remote:
             info["error"] = self._scrub(_shorten(message))
         self._capabilities = info
         return dict(info)
+
+    def open_tables(self) -> requests.Response:
+        """VOSI tables (``{base}/tables``, TAP 1.1 §2) as a streamed response; the caller reads
+        ``.raw`` and closes it.  Retried like every read; 4xx become ServiceRefused."""
+        url = f"{self.base_url}/tables"
+        response = self._request("GET", url, what="reading the table metadata", stream=True,
+                                 allow_redirects=True)
+        response.raw.decode_content = True
+        return response
+
+    def sync(self, adql: str, *, maxrec: int | None = None, fmt: str = "votable",
+             timeout: float | None = None) -> bytes:
+        """Run a small query synchronously (TAP 1.1 §2.1, ``{base}/sync``); return the body.
+
+        One try only when ``timeout`` is given (an estimate must stay short): running out of
+        time raises :class:`~jobdesk.errors.SyncTimeout`.  An error document becomes
+        :class:`~jobdesk.errors.QueryRejected` with the service's own message.
+        """
+        form = {"REQUEST": "doQuery", "LANG": "ADQL", "QUERY": adql, "RESPONSEFORMAT": fmt}
+        if maxrec is not None:
+            form["MAXREC"] = str(int(maxrec))
+        url = f"{self.base_url}/sync"
+        if timeout is None:
+            response = self._request("POST", url, what="a synchronous query", data=form)
+        else:
+            try:
+                response = self._once("POST", url, data=form, timeout=timeout)
+            except requests.exceptions.Timeout:
+                raise SyncTimeout(f"the synchronous query took longer than {timeout:g} s",
+                                  service=self.service) from None
+            except _RetryableStatus as exc:
+                raise ServiceRefused(self._scrub(f"{self.service} answered HTTP {exc.status} "
+                                                 f"to a synchronous query: {exc.message}"),
+                                     status=exc.status, service=self.service) from None
+            except requests.exceptions.RequestException as exc:
+                raise from_transport(exc, service=self.service) from None
+            self._check(response, what="a synchronous query", lost_on_404=False)
+        try:
+            body = response.content
+        except requests.exceptions.Timeout:
+            raise SyncTimeout(f"the synchronous query took longer than {timeout:g} s",
+                              service=self.service) from None
+        message = _error_votable_message(body)
+        if message is not None:
+            raise QueryRejected(self._scrub(message), service=self.service)
+        return body
 
     def download(self, url: str, dest: Path, *,
                  on_progress: Callable[[int], None] | None = None,
