@@ -14,6 +14,7 @@ from jobdesk.errors import (
     NotRepeatableWarning, PublishRefused, QueryRejected, ResultTruncated, ResultTruncatedWarning,
     ResultUnavailable, ServiceError, ServiceRefused, ServiceResponseInvalid, ServiceUnreachable,
     StorageFull, UploadInvalid, WaitTimeout,
+    MetadataUnavailable, MetadataWarning, QueryCheckWarning, SyncTimeout, UnknownTable,
     deprecated_alias as _deprecated_alias,
 )
 
@@ -26,6 +27,7 @@ __all__ = [
     "ResultTruncated", "ResultTruncatedWarning", "ResultUnavailable", "ServiceError",
     "ServiceRefused", "ServiceResponseInvalid", "ServiceUnreachable", "StorageFull",
     "UploadInvalid", "WaitTimeout", "__version__",
+    "MetadataUnavailable", "MetadataWarning", "QueryCheckWarning", "SyncTimeout", "UnknownTable",
 ]
 
 

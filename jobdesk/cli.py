@@ -84,7 +84,7 @@ def cmd_show(args) -> int:
 def cmd_submit(args) -> int:
     desk = _desk(args)
     job = desk.submit(args.service, args.adql, maxrec=args.maxrec, label=args.label,
-                      refresh=args.refresh)
+                      refresh=args.refresh, check=not args.no_check)
     if args.wait:
         job.wait()
     print(json.dumps(job.record, indent=1) if args.json else _row(job))
@@ -204,6 +204,69 @@ def cmd_group_init(args) -> int:
     return 0
 
 
+def _query_text(source: str | None) -> str:
+    """The ADQL of ``check``/``estimate``: a file, or standard input for ``-`` or nothing."""
+    if source in (None, "-"):
+        return sys.stdin.read()
+    with open(source, encoding="utf-8") as f:
+        return f.read()
+
+
+def cmd_tables(args) -> int:
+    desk = _desk(args)
+    tables = desk.tables(args.service, refresh=args.refresh, limit=args.limit)
+    if args.json:
+        print(json.dumps(tables, indent=1))
+        return 0
+    for t in tables:
+        rows = "" if t.get("nrows") is None else f"{t['nrows']:>12,} rows  "
+        print(f"{t['name']:<40} {t['ncols']:>4} cols  {rows}{(t.get('description') or '')[:60]}")
+    return 0
+
+
+def cmd_columns(args) -> int:
+    columns = _desk(args).columns(args.service, args.table)
+    if args.json:
+        print(json.dumps(columns, indent=1))
+        return 0
+    for c in columns:
+        print(f"{c['name']:<28} {c.get('datatype') or '':<8} {c.get('unit') or '':<10} "
+              f"{c.get('ucd') or '':<24} {(c.get('description') or '')[:60]}")
+    return 0
+
+
+def cmd_find(args) -> int:
+    hits = _desk(args).find(args.service, args.text, limit=args.limit)
+    if args.json:
+        print(json.dumps(hits, indent=1))
+        return 0
+    if not hits:
+        print(f"nothing matches {args.text!r}")
+    for h in hits:
+        name = h["table"] if h["column"] is None else f"{h['table']}.{h['column']}"
+        print(f"{name:<48} {h.get('unit') or '':<10} {h.get('ucd') or '':<24} "
+              f"{(h.get('description') or '')[:50]}")
+    return 0
+
+
+def cmd_check(args) -> int:
+    findings = _desk(args).check(args.service, _query_text(args.file))
+    if args.json:
+        print(json.dumps([f.to_dict() for f in findings], indent=1))
+    elif not findings:
+        print("no findings")
+    else:
+        print("\n".join(str(f) for f in findings))
+    return 1 if any(f.severity == "error" for f in findings) else 0
+
+
+def cmd_estimate(args) -> int:
+    found = _desk(args).estimate(args.service, _query_text(args.file), maxrec=args.maxrec,
+                                 fmt=args.format, time_limit=args.time_limit)
+    print(json.dumps(found.to_dict(), indent=1) if args.json else found)
+    return 0
+
+
 def cmd_demo(args) -> int:
     from jobdesk.demo import run
     return run(root=args.root, rows=args.rows)
@@ -235,8 +298,47 @@ def parser() -> argparse.ArgumentParser:
     s.add_argument("--label")
     s.add_argument("--refresh", action="store_true", help="run anew even if cached")
     s.add_argument("--wait", action="store_true", help="wait for the result")
+    s.add_argument("--no-check", action="store_true", help="send it without the local check")
     s.add_argument("--json", action="store_true")
     s.set_defaults(func=cmd_submit)
+
+    s = sub.add_parser("tables", help="a service's tables (cached; --refresh reads them again)")
+    s.add_argument("service")
+    s.add_argument("--refresh", action="store_true")
+    s.add_argument("--limit", type=int)
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_tables)
+
+    s = sub.add_parser("columns", help="one table's columns: type, unit, UCD, description")
+    s.add_argument("service")
+    s.add_argument("table")
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_columns)
+
+    s = sub.add_parser("find", help="search table and column names, descriptions, units, UCDs")
+    s.add_argument("service")
+    s.add_argument("text")
+    s.add_argument("--limit", type=int, default=50)
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_find)
+
+    s = sub.add_parser("check", help="check ADQL (a file, or - for stdin) against the "
+                                     "service's metadata; exit status 1 on errors")
+    s.add_argument("service")
+    s.add_argument("file", nargs="?", default="-")
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_check)
+
+    s = sub.add_parser("estimate", help="predicted rows, bytes, limits and duration of ADQL "
+                                        "(a file, or - for stdin)")
+    s.add_argument("service")
+    s.add_argument("file", nargs="?", default="-")
+    s.add_argument("--maxrec", type=int)
+    s.add_argument("--format", default="votable", help="response format the job would use")
+    s.add_argument("--time-limit", type=float, default=10.0,
+                   help="seconds the COUNT(*) may take before a sample is used instead")
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_estimate)
 
     s = sub.add_parser("wait", help="wait for (resume) the given or all unfinished jobs")
     s.add_argument("ids", nargs="*")

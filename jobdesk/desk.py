@@ -18,11 +18,14 @@ from pathlib import Path
 
 import platformdirs
 
-from jobdesk import keys, phases, provenance, results
+from jobdesk import checks as query_checks
+from jobdesk import estimate as cost
+from jobdesk import keys, metadata, phases, provenance, results
 from jobdesk import uploads as upload_tables
 from jobdesk.errors import (
     BadServiceURL, CacheCorrupt, GroupCacheWarning, JobAborted, JobdeskError, JobFailed, JobLost,
-    NotRepeatableWarning, QueryRejected, ResultTruncated, ResultTruncatedWarning,
+    MetadataUnavailable, MetadataWarning, NotRepeatableWarning, QueryCheckWarning, QueryRejected,
+    SyncTimeout, UnknownTable, ResultTruncated, ResultTruncatedWarning,
     ResultUnavailable, ServiceRefused, ServiceResponseInvalid, ServiceUnreachable, WaitTimeout,
 )
 from jobdesk.groups import GroupCaches
@@ -89,17 +92,24 @@ class Desk:
 
     def submit(self, service, adql: str, *, maxrec: int | None = None, uploads=None,
                label: str | None = None, refresh: bool = False, max_age=None,
-               fmt: str = "votable", publish: bool = True) -> "Job":
+               fmt: str = "votable", publish: bool = True, check: bool = True,
+               estimate: bool = False) -> "Job":
         """Run ``adql`` on ``service`` as an async job, or return the job that already did.
 
         Idempotent: the same query (same key) gives the same job, running or finished, in any
         process. ``refresh=True`` runs it anew; ``max_age`` (seconds or a timedelta) refuses
-        cached results older than that.
+        cached results older than that.  ``check=True`` checks the query against the cached
+        metadata first: errors raise ``QueryRejected`` before any request, warnings show once
+        as ``QueryCheckWarning``.  ``estimate=True`` measures the cost first and shows it.
         """
         url, session = self._unwrap(service)
         sid = keys.service_id(url)
         if session is not None:
             self._sessions[sid] = session
+        if check:
+            self._refuse_bad(sid, adql)
+        if estimate:
+            _show_estimate(self.estimate(sid, adql, maxrec=maxrec, fmt=fmt))
         prepared = upload_tables.prepare(uploads)
         scope = self._scope_for(sid)
         digests = {name: sha for name, (_, sha) in prepared.items()}
@@ -219,6 +229,135 @@ class Desk:
         from jobdesk import eviction
         return eviction.prune(self.index, self.store, self.root, max_bytes=max_bytes,
                               older_than=_seconds(older_than), dry_run=dry_run)
+
+    # --- shaping a query (see jobdesk.metadata, jobdesk.checks, jobdesk.estimate) --------------
+
+    def tables(self, service, *, refresh: bool = False, limit: int | None = None,
+               offset: int = 0) -> list[dict]:
+        """The service's tables (name, schema_name, description, nrows, ncols), from the index;
+        read from the service first when nothing is cached or ``refresh=True``.  When the
+        service cannot be read, cached metadata is used with its age in a ``MetadataWarning``."""
+        sid = self._metadata(service, refresh=refresh)
+        return self.index.meta_tables(sid, limit=limit, offset=offset)
+
+    def columns(self, service, table: str) -> list[dict]:
+        """Columns of one table (name, datatype, arraysize, xtype, unit, ucd, description);
+        the name is matched exactly, else ignoring case.  ``UnknownTable`` names the closest."""
+        sid = self._metadata(service)
+        name = self._table_name(sid, table)
+        return self.index.meta_columns(sid, name)
+
+    def find(self, service, text: str, *, limit: int = 50) -> list[dict]:
+        """Tables and columns whose names, descriptions, units or UCDs hold every word of
+        ``text`` (as word prefixes), best first: ``{table, column, unit, ucd, description,
+        datatype}`` (``column`` None for a table)."""
+        sid = self._metadata(service)
+        match = metadata.fts_query(text)
+        if match is None:
+            return []
+        out = []
+        for hit in self.index.meta_find(sid, match, limit=limit):
+            if hit["column"] is None:
+                row = (self.index.meta_tables(sid, names=[hit["table"]]) or [{}])[0]
+                out.append({"table": hit["table"], "column": None, "unit": None, "ucd": None,
+                            "datatype": None, "description": row.get("description")})
+            else:
+                col = next((c for c in self.index.meta_columns(sid, hit["table"])
+                            if c["name"] == hit["column"]), {})
+                out.append({"table": hit["table"], "column": hit["column"],
+                            "unit": col.get("unit"), "ucd": col.get("ucd"),
+                            "datatype": col.get("datatype"),
+                            "description": col.get("description")})
+        return out
+
+    def check(self, service, adql: str, *, wide: int = query_checks.WIDE_TABLE,
+              huge: int = query_checks.HUGE_TABLE) -> list:
+        """Findings (``jobdesk.checks.Finding``) for ``adql`` against the service's metadata;
+        metadata is read first if none is cached; without any, only the syntax is checked."""
+        sid = keys.service_id(self._unwrap(service)[0])
+        try:
+            self._metadata(sid)
+        except MetadataUnavailable:
+            pass
+        return query_checks.check(adql, metadata.CachedCatalog(self.index, sid), wide=wide,
+                                  huge=huge)
+
+    def estimate(self, service, adql: str, *, maxrec: int | None = None, fmt: str = "votable",
+                 time_limit: float = cost.TIME_LIMIT):
+        """Predicted rows (a COUNT(*) run synchronously within ``time_limit`` seconds, else a
+        TOP-limited sample), bytes in ``fmt``, whether MAXREC or the service's output limit
+        cut it, and a duration range from this service's past jobs (``jobdesk.estimate``)."""
+        url, session = self._unwrap(service)
+        sid = keys.service_id(url)
+        if session is not None:
+            self._sessions[sid] = session
+        remote = self._remote(sid)
+        caps = self._capabilities(sid)
+        output = caps.get("output_limit") or {}
+        return cost.measure(adql, remote.sync, fmt=fmt, maxrec=maxrec,
+                            default_maxrec=output.get("default"), output_limit=output.get("hard"),
+                            history=self.index.job_durations(sid), time_limit=time_limit,
+                            timeout_error=SyncTimeout)
+
+    def metadata_services(self) -> list[dict]:
+        """The services whose metadata this desk holds, with when and from where it was read."""
+        return self.index.metadata_info()
+
+    def _metadata(self, service, *, refresh: bool = False) -> str:
+        """The service id, its metadata cached (read now when missing or ``refresh``)."""
+        url, session = self._unwrap(service)
+        sid = keys.service_id(url)
+        if session is not None:
+            self._sessions[sid] = session
+        known = self.index.metadata_info(sid)
+        if known and not refresh:
+            return sid
+
+        def skipped(message: str) -> None:
+            warnings.warn(MetadataWarning(f"{sid}: {message}"), stacklevel=4)
+        try:
+            metadata.refresh(self.index, self._remote(sid), sid, on_skip=skipped)
+        except JobdeskError as exc:
+            if not known:
+                raise MetadataUnavailable(f"no table metadata for {sid}: the service could not "
+                                          f"be read ({exc.message}) and none is cached",
+                                          service=sid) from exc
+            age = time.time() - known[0]["read_at"]
+            warnings.warn(MetadataWarning(
+                f"{sid} could not be read ({exc.message}); using the metadata cached "
+                f"{_age(age)} ago"), stacklevel=3)
+        return sid
+
+    def _table_name(self, sid: str, table: str) -> str:
+        exact = self.index.meta_tables(sid, names=[table])
+        if exact:
+            return exact[0]["name"]
+        like = self.index.meta_table_like(sid, table)
+        if len(like) == 1:
+            return like[0]["name"]
+        names = [t["name"] for t in self.index.meta_tables(sid)]
+        import difflib
+        close = difflib.get_close_matches(table.lower(), [n.lower() for n in names], n=3,
+                                          cutoff=0.6)
+        spelled = {n.lower(): n for n in names}
+        suggestions = [spelled[c] for c in close] or [t["name"] for t in like]
+        more = f"; did you mean {' or '.join(suggestions)}?" if suggestions else ""
+        raise UnknownTable(f"{sid} lists no table {table}{more}", suggestions=suggestions,
+                           service=sid)
+
+    def _refuse_bad(self, sid: str, adql: str) -> None:
+        """The check before submit: cached metadata only (no request); errors refuse."""
+        found = query_checks.check(adql, metadata.CachedCatalog(self.index, sid))
+        bad = query_checks.errors(found)
+        if bad:
+            raise QueryRejected("the query was not sent: the local check found "
+                                f"{len(bad)} error(s)\n" + "\n".join(str(f) for f in bad),
+                                findings=found, service=sid,
+                                hint="fix the query where the caret points; pass check=False "
+                                     "to send it anyway")
+        for f in found:
+            if f.code != "no-metadata":
+                warnings.warn(QueryCheckWarning(str(f)), stacklevel=4)
 
     # --- group caches (see jobdesk.groups) ------------------------------------------------------
 
@@ -651,6 +790,9 @@ class Job:
         if record["phase"] in (phases.LOST, phases.ARCHIVED):
             return JobLost(f"job {self.id}: {message}", service=service)
         if _looks_like_query_error(message):
+            spot = query_checks.from_service(record["adql"], message)
+            if spot is not None:
+                return QueryRejected(f"{message}\n{spot}", findings=[spot], service=service)
             return QueryRejected(message, service=service)
         return JobFailed(message, phase=record["phase"], summary=record.get("error"),
                          service=service)
@@ -751,6 +893,32 @@ def _warn_not_repeatable(reasons) -> None:
     for reason in reasons:
         warnings.warn(NotRepeatableWarning(
             f"{reason}: a cached answer may differ from a fresh run"), stacklevel=3)
+
+
+def _age(seconds: float) -> str:
+    if seconds < 120:
+        return f"{seconds:.0f} s"
+    if seconds < 7200:
+        return f"{seconds / 60:.0f} min"
+    if seconds < 172800:
+        return f"{seconds / 3600:.0f} h"
+    return f"{seconds / 86400:.0f} days"
+
+
+def _show_estimate(found) -> None:
+    """The estimate where the user looks: a card in a notebook, stderr in a terminal."""
+    text = str(found)
+    try:
+        from IPython import get_ipython
+        from IPython.display import display
+        if get_ipython() is not None:
+            from IPython.display import Pretty
+            display(Pretty("estimate before the long run:\n" + text))
+            return
+    except ImportError:
+        pass
+    import sys
+    print("estimate before the long run:\n" + text, file=sys.stderr)
 
 
 def _progress(title: str, job_id: str | None = None):

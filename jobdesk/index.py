@@ -492,6 +492,15 @@ class Index:
                 "ORDER BY rank LIMIT ?", [match, service, int(limit)])
             return [{"table": t, "column": c, "rank": r} for t, c, r in cur.fetchall()]
 
+    def job_durations(self, service: str, *, limit: int = 200) -> list[tuple[float, int | None]]:
+        """(seconds from submission to the end, rows) of the latest finished jobs of a service."""
+        with self._lock:
+            return [tuple(r) for r in self.db.execute(
+                "SELECT finished - coalesce(started, submitted), rows FROM jobs "
+                "WHERE service = ? AND phase = 'COMPLETED' AND submitted IS NOT NULL "
+                "AND finished IS NOT NULL AND job_url IS NOT NULL "
+                "ORDER BY finished DESC LIMIT ?", [service, int(limit)]).fetchall()]
+
     def referenced_objects(self) -> set[str]:
         """Every checksum some record points at (eviction must keep these files)."""
         with self._lock:

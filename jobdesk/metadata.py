@@ -197,3 +197,49 @@ def fts_query(text: str) -> str | None:
     if not words:
         return None
     return " AND ".join(f'"{w}"*' for w in words[:12])
+
+
+# --- reading a service -------------------------------------------------------------------------
+
+
+def refresh(index, remote, service: str, *, on_skip: Callable[[str], None]) -> dict:
+    """Read ``service``'s metadata (VOSI tables, else TAP_SCHEMA) into ``index``; return what
+    :meth:`Index.save_metadata` says.  Raises the service's error when neither can be read."""
+    from jobdesk.errors import JobdeskError, ServiceResponseInvalid
+    from xml.etree.ElementTree import ParseError
+
+    skipped: list[str] = []
+
+    def skip(message: str) -> None:
+        skipped.append(message)
+        on_skip(message)
+
+    first_error: Exception | None = None
+    try:
+        with remote.open_tables() as response:
+            counted = {"columns": 0}
+
+            def tables():
+                for t in parse_tableset(response.raw, on_skip=skip):
+                    counted["columns"] += len(t["columns"])
+                    yield t
+            saved = index.save_metadata(service, tables(), source="vosi", skipped=skipped)
+        if saved["tables"] and saved["columns"]:
+            saved["skipped"] = skipped
+            return saved
+        first_error = ServiceResponseInvalid("the VOSI tables document lists no columns",
+                                             service=service)
+    except (JobdeskError, ParseError, ValueError) as exc:
+        first_error = exc
+    skipped.clear()
+    try:
+        tables_body = remote.sync(TAP_SCHEMA_TABLES)
+        columns_body = remote.sync(TAP_SCHEMA_COLUMNS)
+        found = tables_from_tap_schema(tables_body, columns_body, on_skip=skip)
+    except JobdeskError:
+        if isinstance(first_error, JobdeskError):
+            raise first_error from None
+        raise
+    saved = index.save_metadata(service, found, source="tap_schema", skipped=skipped)
+    saved["skipped"] = skipped
+    return saved
