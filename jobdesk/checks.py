@@ -547,7 +547,7 @@ class _Checker:
                     continue                              # compared with an expression: quiet
                 if value not in (0, 1):
                     self.add(ERROR, "predicate-compare", f"{name}(...) is 1 or 0 and must be "
-                             "compared with 0 or 1 (ADQL 2.1 §4.2)", b,
+                             "compared with 0 or 1 (ADQL 2.1 §4.2.12)", b,
                              f"write 1 = {name}(...) for 'yes' or 0 = {name}(...) for 'no'")
                 return
         for a, b in ((left, right), (right, left)):

@@ -22,6 +22,7 @@ from jobdesk.checks import _Adql
 SAMPLE_ROWS = 100           # rows of the sample that measures bytes per row
 FALLBACK_ROWS = 1000        # rows of the TOP-limited sample when the count runs out of time
 TIME_LIMIT = 10.0           # seconds for the count (common practice, no source)
+SAMPLE_TIME_LIMIT = 30.0    # seconds for a TOP-limited sample (it stops early: cheap)
 
 
 @dataclass
@@ -263,6 +264,7 @@ def measure(adql: str, run, *, fmt: str, maxrec: int | None, default_maxrec: int
     """Measure ``adql`` with ``run(query, *, maxrec, fmt, timeout) -> bytes`` (a synchronous
     TAP query); ``history`` lists (seconds, rows) of this service's past jobs."""
     notes: list[str] = []
+    sample_limit = max(time_limit, SAMPLE_TIME_LIMIT)
     p = plan(adql)
     if p is None:
         raise ValueError("the query's shape is not understood well enough to count it")
@@ -283,14 +285,14 @@ def measure(adql: str, run, *, fmt: str, maxrec: int | None, default_maxrec: int
                          f"sample of at most {FALLBACK_ROWS}")
             method = "sample"
             body = run(_resize(p.sample, FALLBACK_ROWS), maxrec=None, fmt="votable",
-                       timeout=time_limit)
+                       timeout=sample_limit)
             got = sample_rows(body) or 0
             rows = apply_limits(got, p)
             rows_exact = got < FALLBACK_ROWS
     header = sample = sampled = None
     try:
-        header = len(run(p.sample, maxrec=0, fmt=fmt, timeout=time_limit))
-        body = run(p.sample, maxrec=None, fmt=fmt, timeout=time_limit)
+        header = len(run(p.sample, maxrec=0, fmt=fmt, timeout=sample_limit))
+        body = run(p.sample, maxrec=None, fmt=fmt, timeout=sample_limit)
         sample, sampled = len(body), sample_rows(body)
     except timeout_error:
         notes.append("the sample that measures bytes per row ran out of time")
