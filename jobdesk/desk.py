@@ -106,10 +106,6 @@ class Desk:
         sid = keys.service_id(url)
         if session is not None:
             self._sessions[sid] = session
-        if check:
-            self._refuse_bad(sid, adql)
-        if estimate:
-            _show_estimate(self.estimate(sid, adql, maxrec=maxrec, fmt=fmt))
         prepared = upload_tables.prepare(uploads)
         scope = self._scope_for(sid)
         digests = {name: sha for name, (_, sha) in prepared.items()}
@@ -130,6 +126,10 @@ class Desk:
         if known is not None and self._copied_here(known):  # the fast path: no parse, no lock
             _warn_not_repeatable(known.get("warnings") or ())
             return Job(self, known["id"], known)
+        if check:      # a hit above sends nothing, so only a query about to be sent is checked
+            self._refuse_bad(sid, adql)
+        if estimate:
+            _show_estimate(self.estimate(sid, adql, maxrec=maxrec, fmt=fmt))
         canonical = keys.canonical_adql(adql)
         _warn_not_repeatable(canonical.warnings)
 
@@ -356,7 +356,7 @@ class Desk:
                                 hint="fix the query where the caret points; pass check=False "
                                      "to send it anyway")
         for f in found:
-            if f.code != "no-metadata":
+            if f.code not in ("no-metadata", "top-no-order"):  # the latter: NotRepeatableWarning
                 warnings.warn(QueryCheckWarning(str(f)), stacklevel=4)
 
     # --- group caches (see jobdesk.groups) ------------------------------------------------------
