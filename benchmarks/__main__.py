@@ -26,6 +26,7 @@ CASES = {
     "case4": ("case4_completion", "completion latency and requests per job"),
     "case5": ("case5_index_scale", "listing and cache-hit submit with 100,000 jobs"),
     "case6": ("case6_keys", "cache keys per second"),
+    "case7": ("case7_shaping", "metadata memory, find, tables page, check"),
 }
 
 

@@ -66,6 +66,22 @@ def main() -> None:
         result = pyvo.dal.AsyncTAPJob(args["job_url"]).fetch_result()
         out["seconds"] = time.perf_counter() - started
         out["rows"] = len(result)
+    elif mode == "metadata":
+        from jobdesk import Desk
+
+        desk = Desk(args["root"])
+        base = reset_peak()
+        started = time.perf_counter()
+        out["tables"] = len(desk.tables(args["url"]))
+        out["seconds"] = time.perf_counter() - started
+    elif mode == "etree":
+        import xml.etree.ElementTree as ET
+
+        base = reset_peak()
+        started = time.perf_counter()
+        root = ET.parse(args["path"]).getroot()
+        out["tables"] = sum(1 for e in root.iter() if e.tag == "table")
+        out["seconds"] = time.perf_counter() - started
     else:
         raise SystemExit(f"unknown mode {mode!r}")
     out["baseline_kb"] = base

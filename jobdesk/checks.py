@@ -41,6 +41,9 @@ class _Adql(TSQL):
         IDENTIFIERS = ['"']
 
 
+_DIALECT = _Adql()   # one instance: made once, not per query
+
+
 # --- findings -----------------------------------------------------------------------------------
 
 
@@ -227,7 +230,7 @@ def _parse(adql: str, text: _Text) -> exp.Expression | Finding:
         return text.finding(ERROR, "syntax", f"unterminated {what} (missing closing {quote})",
                             offset, suggestion=f"close it with {quote}")
     try:
-        statements = [s for s in sqlglot.parse(adql, dialect=_Adql) if s is not None]
+        statements = [s for s in sqlglot.parse(adql, dialect=_DIALECT) if s is not None]
     except ParseError as exc:
         return _syntax_finding(exc, text)
     except TokenError as exc:

@@ -100,9 +100,12 @@ def run(root=None, rows: int = 20000) -> int:
 
         _say("4. A bad query gets the service's own message", BAD)
         try:
-            desk.submit(url, BAD, label="typo").wait()
+            desk.submit(url, BAD, label="typo", check=False).wait()
         except JobdeskError as exc:
             print(f"   {type(exc).__name__}: {exc}".replace("\n", "\n   "))
+        print("   checked locally first (submit does this by default, before any request):")
+        for finding in desk.check(url, BAD):
+            print("   " + str(finding).replace("\n", "\n   "))
 
         _say("5. The service goes down; the cone search is answered from the cache")
         tap.stop()

@@ -14,7 +14,7 @@ from pathlib import Path
 import pytest
 
 ROOT = Path(__file__).resolve().parent.parent
-CASES = ("case1", "case2", "case3", "case4", "case5", "case6")
+CASES = ("case1", "case2", "case3", "case4", "case5", "case6", "case7")
 
 
 @pytest.mark.timeout(600)
