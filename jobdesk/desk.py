@@ -299,9 +299,16 @@ class Desk:
                             history=self.index.job_durations(sid), time_limit=time_limit,
                             timeout_error=SyncTimeout)
 
-    def metadata_services(self) -> list[dict]:
-        """The services whose metadata this desk holds, with when and from where it was read."""
-        return self.index.metadata_info()
+    def known_services(self) -> list[dict]:
+        """Every service this desk knows (from its jobs or its cached metadata): ``service``,
+        ``jobs``, and when its metadata was read (``read_at``, ``source``, ``tables``,
+        ``columns``; None when never)."""
+        out = {s: {"service": s, "jobs": n, "read_at": None, "source": None, "tables": None,
+                   "columns": None} for s, n in self.index.services()}
+        for info in self.index.metadata_info():
+            entry = out.setdefault(info["service"], {"service": info["service"], "jobs": 0})
+            entry.update({k: info[k] for k in ("read_at", "source", "tables", "columns")})
+        return sorted(out.values(), key=lambda e: e["service"])
 
     def _metadata(self, service, *, refresh: bool = False) -> str:
         """The service id, its metadata cached (read now when missing or ``refresh``)."""

@@ -492,6 +492,12 @@ class Index:
                 "ORDER BY rank LIMIT ?", [match, service, int(limit)])
             return [{"table": t, "column": c, "rank": r} for t, c, r in cur.fetchall()]
 
+    def services(self) -> list[tuple[str, int]]:
+        """Every service some job record names, with its number of jobs."""
+        with self._lock:
+            return [tuple(r) for r in self.db.execute(
+                "SELECT service, count(*) FROM jobs GROUP BY service ORDER BY service")]
+
     def job_durations(self, service: str, *, limit: int = 200) -> list[tuple[float, int | None]]:
         """(seconds from submission to the end, rows) of the latest finished jobs of a service."""
         with self._lock:

@@ -40,8 +40,9 @@ def _load_jupyter_server_extension(serverapp) -> None:
     web_app.settings["jobdesk_poller"] = poller
 
     base = url_path_join(web_app.settings["base_url"], "jobdesk", "api")
+    from jobdesk.server import shaping
     web_app.add_handlers(".*$", [(url_path_join(base, path), handler)
-                                 for path, handler in routes()])
+                                 for path, handler in routes() + shaping.routes()])
     poller.start()
     _stop_on_exit(serverapp, poller, runner)
     serverapp.log.info("jobdesk: REST API at %s, poller every %ss (desk root %s)",
