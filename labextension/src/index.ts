@@ -16,6 +16,7 @@ import { firstLine, formatDuration, formatRows } from './format';
 import { jobdeskIcon } from './icon';
 import { IJobRecord, JobDeskModel } from './model';
 import { IPanelActions, JobDeskPanel } from './panel';
+import servicesPlugin from './servicesplugin';
 
 const PLUGIN_ID = 'jobdesk-labextension:sidebar';
 
@@ -156,4 +157,4 @@ const plugin: JupyterFrontEndPlugin<void> = {
   }
 };
 
-export default plugin;
+export default [plugin, servicesPlugin];
