@@ -213,6 +213,10 @@ def check(adql: str, catalog: Catalog | None = None, *, wide: int = WIDE_TABLE,
         _Checker(text, catalog, found, wide=wide, huge=huge).query(tree, [], {})
     except RecursionError:
         found.append(text.finding(WARNING, "not-checked", "the query nests too deeply to check", 0))
+    except Exception as exc:   # noqa: BLE001 - a checker fault must never block a query
+        found[:] = [f for f in found if f.severity != ERROR]
+        found.append(text.finding(WARNING, "not-checked", "the checker could not follow this "
+                                  f"query ({exc.__class__.__name__}); it was not checked", 0))
     order = {ERROR: 0, WARNING: 1}
     unique = list(dict.fromkeys(found))
     return sorted(unique, key=lambda f: (order.get(f.severity, 2), f.line, f.column))

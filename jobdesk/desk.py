@@ -291,13 +291,27 @@ class Desk:
         sid = keys.service_id(url)
         if session is not None:
             self._sessions[sid] = session
+        bad = query_checks.errors(query_checks.check(adql, None))    # syntax: no request
+        if bad:
+            raise QueryRejected("the query cannot be estimated: it does not parse\n"
+                                + "\n".join(map(str, bad)), findings=bad, service=sid)
         remote = self._remote(sid)
         caps = self._capabilities(sid)
         output = caps.get("output_limit") or {}
-        return cost.measure(adql, remote.sync, fmt=fmt, maxrec=maxrec,
-                            default_maxrec=output.get("default"), output_limit=output.get("hard"),
-                            history=self.index.job_durations(sid), time_limit=time_limit,
-                            timeout_error=SyncTimeout)
+        try:
+            return cost.measure(adql, remote.sync, fmt=fmt, maxrec=maxrec,
+                                default_maxrec=output.get("default"),
+                                output_limit=output.get("hard"),
+                                history=self.index.job_durations(sid), time_limit=time_limit,
+                                timeout_error=SyncTimeout)
+        except ValueError as exc:
+            raise QueryRejected(f"the query cannot be estimated: {exc}", service=sid) from None
+        except QueryRejected as exc:
+            spot = query_checks.from_service(adql, exc.message)
+            if spot is None:
+                raise
+            raise QueryRejected(f"{exc.message}\n{spot}", findings=[spot],
+                                service=sid) from None
 
     def known_services(self) -> list[dict]:
         """Every service this desk knows (from its jobs or its cached metadata): ``service``,

@@ -313,3 +313,16 @@ def test_every_query_the_embedded_engine_runs_passes_without_error(tmp_path):
         accepted += 1
         assert not errors(check(adql, catalog)), (adql, check(adql, catalog))
     assert accepted >= 20
+
+
+def test_any_text_gets_findings_never_an_exception():
+    from hypothesis import given, settings, strategies as st
+
+    @settings(max_examples=300, deadline=None)
+    @given(st.text(max_size=300) | st.builds(lambda a, b: f"SELECT {a} FROM orrery.sources {b}",
+                                              st.text(max_size=60), st.text(max_size=60)))
+    def run(text):
+        for f in check(text, CATALOG):
+            assert f.severity in ("error", "warning") and f.line >= 1 and f.column >= 1
+            assert isinstance(str(f), str)
+    run()
