@@ -40,6 +40,7 @@ CASE_NAMES = {
     "case4": "completion",
     "case5": "index-scale",
     "case6": "keys",
+    "case7": "shaping",
 }
 
 # A comparison word and its opposite: a ratio below 1 is read the other way round, so that
