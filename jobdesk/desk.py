@@ -128,8 +128,10 @@ class Desk:
             return Job(self, known["id"], known)
         if check:      # a hit above sends nothing, so only a query about to be sent is checked
             self._refuse_bad(sid, adql)
+        measured = None
         if estimate:
-            _show_estimate(self.estimate(sid, adql, maxrec=maxrec, fmt=fmt))
+            measured = self.estimate(sid, adql, maxrec=maxrec, fmt=fmt)
+            _show_estimate(measured)
         canonical = keys.canonical_adql(adql)
         _warn_not_repeatable(canonical.warnings)
 
@@ -146,6 +148,7 @@ class Desk:
             "notebook": os.environ.get("JPY_SESSION_NAME"), "user": provenance.current_user(),
             "host": socket.gethostname(), "warnings": list(canonical.warnings),
             "layer": "personal", "requests": 0,
+            "estimate": measured.to_dict() if measured is not None else None,
         }
         record, created = self.index.claim(key, fields, reuse=reuse)
         if not created and not self._copied_here(record):

@@ -39,10 +39,11 @@ JOB_COLUMNS: dict[str, type] = {
     "finished": float, "updated": float, "rows": int, "truncated": int, "result_sha256": str,
     "result_bytes": int, "result_stat": str, "parquet_sha256": str, "parquet_stat": str,
     "error": str, "notebook": str, "user": str, "host": str, "requests": int, "owner": str,
-    "lease_until": float, "layer": str, "warnings": str, "server": str,
+    "lease_until": float, "layer": str, "warnings": str, "server": str, "estimate": str,
 }
 
 MIGRATIONS: list[Callable[[sqlite_utils.Database], None]] = []
+_LATER_COLUMNS = ("estimate",)   # added to jobs by a later migration, not by the first
 
 
 def _migration(fn: Callable[[sqlite_utils.Database], None]) -> Callable:
@@ -54,7 +55,8 @@ def _migration(fn: Callable[[sqlite_utils.Database], None]) -> Callable:
 def _v0_to_v1(db: sqlite_utils.Database) -> None:
     # Raw statements (sqlite-utils writes the DDL): its table methods commit on their own,
     # which would end the migration's IMMEDIATE transaction early.
-    db.execute(db.create_table_sql("jobs", JOB_COLUMNS, pk="id",
+    db.execute(db.create_table_sql("jobs", {k: v for k, v in JOB_COLUMNS.items()
+                                            if k not in _LATER_COLUMNS}, pk="id",
                                    not_null={"key", "service", "phase", "created"},
                                    defaults={"requests": 0, "layer": "personal"}))
     for cols in (("key", "created"), ("created",), ("phase", "service"), ("updated",)):
@@ -108,6 +110,8 @@ def _add_service_metadata(db: sqlite_utils.Database) -> None:
     db.execute("CREATE VIRTUAL TABLE meta_search USING fts5(service UNINDEXED, "
                "table_name UNINDEXED, column_name UNINDEXED, name, description, unit, ucd, "
                "tokenize = 'unicode61 remove_diacritics 2')")
+    # The estimate measured before a job was sent (submit(..., estimate=True)), as JSON.
+    db.execute("ALTER TABLE jobs ADD COLUMN estimate TEXT")
 
 
 SCHEMA_VERSION = len(MIGRATIONS)
@@ -554,7 +558,7 @@ def _filters(phase, service, text) -> tuple[str, list]:
     return ("WHERE " + " AND ".join(clauses)) if clauses else "", args
 
 
-_JSON_FIELDS = ("uploads", "warnings", "server")
+_JSON_FIELDS = ("uploads", "warnings", "server", "estimate")
 
 
 def _encode(record: dict) -> dict:

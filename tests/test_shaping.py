@@ -141,11 +141,13 @@ def test_index_from_before_this_feature_is_migrated(tmp_path):
     conn = sqlite3.connect(path)
     for table in ("meta_search", "meta_columns", "meta_tables", "meta_services"):
         conn.execute(f"DROP TABLE {table}")
+    conn.execute("ALTER TABLE jobs DROP COLUMN estimate")
     conn.execute("PRAGMA user_version = 4")              # as written by the v4 schema
     conn.commit()
     conn.close()
     index = Index(path)
     assert index.metadata_info() == []
+    assert "estimate" in {r[1] for r in index.db.execute("PRAGMA table_info(jobs)")}
     index.save_metadata("http://x/tap", [{"name": "s.t", "columns": [{"name": "c"}]}],
                         source="vosi")
     assert index.meta_find("http://x/tap", '"c"*')[0]["column"] == "c"
@@ -228,6 +230,14 @@ def test_estimate_applies_top_maxrec_and_the_output_limit(tap, desk):
         "SELECT class_label, COUNT(*) AS n FROM orrery.sources GROUP BY class_label").to_table()
     assert grouped.rows == len(ref)
     assert desk.estimate(tap.url, "SELECT COUNT(*) FROM orrery.sources").rows == 1
+
+
+def test_submit_with_estimate_keeps_it_in_the_record(tap, desk, capsys):
+    adql = "SELECT orrery_id, ra FROM orrery.sources WHERE ra < 90 ORDER BY orrery_id"
+    job = desk.submit(tap.url, adql, estimate=True)
+    assert "estimate before the long run" in capsys.readouterr().err
+    kept = job.record["estimate"]
+    assert kept["rows"] == job.wait(progress=False).rows and kept["method"] == "count"
 
 
 def test_a_slow_count_falls_back_to_a_sample(tmp_path):

@@ -15,6 +15,7 @@ import {
 } from './format';
 import { IJobDetails, IJobRecord, IPreview, JobDeskModel } from './model';
 import { IPanelActions, phaseBadge } from './panel';
+import { estimateText } from './estimatetext';
 
 export class JobDetails extends Widget {
   constructor(
@@ -108,6 +109,7 @@ export class JobDetails extends Widget {
       ['Finished', formatWhen(job.finished)],
       ['Rows', formatRows(job.rows) + (job.truncated ? ' — truncated, not the full answer' : '')],
       ['Size', formatBytes(job.result_bytes)],
+      ['Estimate', estimateText(job) || '—'],
       ['MAXREC', job.maxrec === null || job.maxrec === undefined ? 'service default' : String(job.maxrec)],
       ['Cache', job.parquet_sha256 ? `${job.layer || 'personal'} cache` : 'not cached'],
       ['Notebook', job.notebook || '—'],

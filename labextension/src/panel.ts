@@ -20,6 +20,7 @@ import {
   timeWords
 } from './format';
 import { ICacheSummary, IJobRecord, JobDeskModel } from './model';
+import { rowsOrEstimate } from './estimatetext';
 
 export interface IPanelActions {
   openDetails(job: IJobRecord): void;
@@ -169,7 +170,7 @@ export class JobDeskPanel extends Widget {
     facts.append(
       text('jd-host', hostOf(job.service)),
       time,
-      text('jd-rows', formatRows(job.rows)),
+      text('jd-rows', rowsOrEstimate(job, formatRows(job.rows))),
       text('jd-bytes', formatBytes(job.result_bytes))
     );
     if (job.parquet_sha256) {

@@ -29,6 +29,12 @@ def tap(tmp_path_factory):
 
 
 @pytest.fixture(scope="module")
+def slow_tap(tmp_path_factory):
+    with serve(state=tmp_path_factory.mktemp("slow"), rows=300, exec_delay=120) as tap:
+        yield tap
+
+
+@pytest.fixture(scope="module")
 def lab(tmp_path_factory, tap):
     if not (BUNDLE / "package.json").exists():
         pytest.skip("the lab extension is not built here (cd labextension && npm run build)")
@@ -87,3 +93,24 @@ def test_browse_a_service_and_insert_a_starter_query(lab, browser, tap):
         hit.wait_for(timeout=30_000)
     finally:
         context.close()
+
+
+def test_the_estimate_shows_beside_a_running_job(lab, browser, slow_tap):
+    desk = Desk(lab.desk_root)
+    adql = "SELECT orrery_id FROM orrery.sources WHERE ra < 180 ORDER BY orrery_id"
+    job = desk.submit(slow_tap.url, adql, estimate=True)
+    rows = job.record["estimate"]["rows"]
+    context = browser.new_context(viewport={"width": 1280, "height": 820})
+    page = context.new_page()
+    try:
+        page.goto(lab.url(f"lab?reset&token={lab.token}"))
+        tab = page.locator('.jp-SideBar [data-id="jobdesk-sidebar"]')
+        tab.wait_for(timeout=60_000)
+        if "lm-mod-current" not in (tab.get_attribute("class") or ""):
+            tab.click()
+        row = page.locator(f'#jobdesk-sidebar .jd-row[data-job-id="{job.id}"]')
+        row.wait_for(timeout=30_000)
+        assert row.locator(".jd-rows").text_content() == f"≈ {rows:,} rows"
+    finally:
+        context.close()
+        desk.abort(job.id)
