@@ -60,12 +60,18 @@ class Finding:
     length: int = 1
     text: str = field(default="", repr=False, compare=False)   # the query line it points into
 
+    def caret(self) -> str:
+        """The query line and a caret under the spot (empty when the line is unknown)."""
+        if not self.text:
+            return ""
+        gutter = f"  {self.line} | "
+        caret = " " * (len(gutter) + self.column - 1) + "^" * max(1, min(self.length, 60))
+        return f"{gutter}{self.text}\n{caret}"
+
     def __str__(self) -> str:
         head = f"{self.severity}: {self.message} [{self.code}] (line {self.line}, column {self.column})"
         if self.text:
-            gutter = f"  {self.line} | "
-            caret = " " * (len(gutter) + self.column - 1) + "^" * max(1, min(self.length, 60))
-            head += f"\n{gutter}{self.text}\n{caret}"
+            head += "\n" + self.caret()
         if self.suggestion:
             head += f"\n  suggestion: {self.suggestion}"
         return head

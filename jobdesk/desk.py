@@ -313,7 +313,7 @@ class Desk:
             spot = query_checks.from_service(adql, exc.message)
             if spot is None:
                 raise
-            raise QueryRejected(f"{exc.message}\n{spot}", findings=[spot],
+            raise QueryRejected(f"{exc.message}\n{spot.caret()}", findings=[spot],
                                 service=sid) from None
 
     def known_services(self) -> list[dict]:
@@ -816,7 +816,8 @@ class Job:
         if _looks_like_query_error(message):
             spot = query_checks.from_service(record["adql"], message)
             if spot is not None:
-                return QueryRejected(f"{message}\n{spot}", findings=[spot], service=service)
+                return QueryRejected(f"{message}\n{spot.caret()}", findings=[spot],
+                                     service=service)
             return QueryRejected(message, service=service)
         return JobFailed(message, phase=record["phase"], summary=record.get("error"),
                          service=service)
