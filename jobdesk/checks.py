@@ -124,9 +124,9 @@ class StaticCatalog:
         self.tables = list(tables or [])
 
     def table(self, name: str) -> list[TableMeta]:
-        low = name.lower()
-        return [t for t in self.tables
-                if t.name.lower() == low or t.name.rsplit(".", 1)[-1].lower() == low]
+        low = name.replace('"', "").lower()
+        plain = [(t, t.name.replace('"', "").lower()) for t in self.tables]
+        return [t for t, n in plain if n == low or n.rsplit(".", 1)[-1] == low]
 
     def table_names(self) -> list[str]:
         return [t.name for t in self.tables]
@@ -431,9 +431,10 @@ class _Checker:
         if len(parts) == 1:
             matching = candidates
         else:
-            matching = [t for t in candidates if t.name.lower() == name.lower()]
+            matching = [t for t in candidates
+                        if t.name.replace('"', "").lower() == name.lower()]
         exact = [t for t in matching if all(
-            not p.quoted or p.this in t.name.split(".") for p in parts)]
+            not p.quoted or p.this in t.name.replace('"', "").split(".") for p in parts)]
         if not matching:
             if len(parts) > 1 and parts[-2].this.upper() == "TAP_SCHEMA":
                 return _Source(alias, None, (name,), None)   # listed by few services
@@ -452,8 +453,10 @@ class _Checker:
         if len(parts) == 1 and len(matching) > 1:
             return _Source(alias, None, (name,), None)       # ambiguous short name: stay quiet
         table = (exact or matching)[0]
-        names = (table.name, table.name.rsplit(".", 1)[-1])
-        return _Source(alias, table, names, table.columns)
+        plain = table.name.replace('"', "")
+        names = (plain, plain.rsplit(".", 1)[-1])
+        # a table listed without columns (some services list names only): columns unknown
+        return _Source(alias, table, names, table.columns or None)
 
     # -- columns -----------------------------------------------------------------------------
 

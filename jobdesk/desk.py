@@ -374,11 +374,14 @@ class Desk:
         found = query_checks.check(adql, metadata.CachedCatalog(self.index, sid))
         bad = query_checks.errors(found)
         if bad:
+            hint = "fix the query where the caret points; pass check=False to send it anyway"
+            known = self.index.metadata_info(sid)
+            if known and any(f.code.startswith("unknown-") for f in bad):
+                hint += (f" (the service's tables were read {_age(time.time() - known[0]['read_at'])}"
+                         " ago; desk.tables(service, refresh=True) reads them again)")
             raise QueryRejected("the query was not sent: the local check found "
                                 f"{len(bad)} error(s)\n" + "\n".join(str(f) for f in bad),
-                                findings=found, service=sid,
-                                hint="fix the query where the caret points; pass check=False "
-                                     "to send it anyway")
+                                findings=found, service=sid, hint=hint)
         for f in found:
             if f.code not in ("no-metadata", "top-no-order"):  # the latter: NotRepeatableWarning
                 warnings.warn(QueryCheckWarning(str(f)), stacklevel=4)

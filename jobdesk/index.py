@@ -409,8 +409,8 @@ class Index:
                              "description, nrows, ncols, ord, lname, lshort) "
                              "VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?)",
                              [service, t["name"], t.get("schema_name"), t.get("description"),
-                              t.get("nrows"), len(columns), n_tables, t["name"].lower(),
-                              t["name"].rsplit(".", 1)[-1].lower()])
+                              t.get("nrows"), len(columns), n_tables, _plain(t["name"]),
+                              _plain(t["name"]).rsplit(".", 1)[-1]])
                 conn.execute("INSERT INTO meta_search (service, table_name, column_name, name, "
                              "description, unit, ucd) VALUES (?, ?, NULL, ?, ?, NULL, NULL)",
                              [service, t["name"], t["name"], t.get("description") or ""])
@@ -468,7 +468,7 @@ class Index:
 
     def meta_table_like(self, service: str, name: str) -> list[dict]:
         """Tables whose full or short name is ``name``, ignoring case (two indexed reads)."""
-        low = name.lower()
+        low = _plain(name)
         with self._lock:
             cur = self.db.execute(
                 "SELECT name, schema_name, description, nrows, ncols FROM meta_tables "
@@ -528,6 +528,12 @@ class Index:
 
     def _log_phase(self, job_id: str, phase: str, at: float, note: str | None) -> None:
         _insert(self.db.conn, "phases", {"job_id": job_id, "phase": phase, "at": at, "note": note})
+
+
+def _plain(name: str) -> str:
+    """A table name as looked up: lower case, without the quotes some services list it with
+    (``"Mixed"."Case"``)."""
+    return name.replace('"', "").lower()
 
 
 def _column(name: str) -> str:

@@ -114,6 +114,14 @@ def test_without_metadata_only_the_syntax_is_checked():
     assert ("error", "syntax") in codes("SELECT a FROM", None)
 
 
+def test_tables_listed_oddly_give_no_false_error():
+    odd = StaticCatalog([TableMeta('"Mixed"."Case Tab"', [ColumnMeta("Flux", "double")]),
+                         TableMeta("inv.names_only", [])])          # listed without columns
+    assert not errors(check('SELECT "Flux" FROM "Mixed"."Case Tab" WHERE "Flux" > 1', odd))
+    assert not errors(check("SELECT anything FROM inv.names_only WHERE x > 1", odd))
+    assert only("SELECT a FROM inv.nothing", "unknown-table", odd).severity == "error"
+
+
 def test_no_false_errors_on_valid_shapes():
     for adql in [
         "SELECT s.ra, v.mag FROM orrery.sources AS s JOIN orrery.visits AS v "

@@ -164,6 +164,7 @@ def test_errors_are_refused_before_any_request(tap, desk):
     assert _requests(tap) == before
     assert [f.code for f in err.value.findings if f.severity == "error"] == ["unknown-column"]
     assert "^^^^" in str(err.value) and "did you mean dec" in str(err.value)
+    assert "refresh=True" in err.value.hint and "read" in err.value.hint
     assert desk.jobs() == []
     # check=False sends it, and the service's refusal points at the same token
     job = desk.submit(tap.url, "SELECT ra, decc FROM orrery.sources WHERE ra < 10", check=False)
