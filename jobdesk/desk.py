@@ -20,7 +20,7 @@ import platformdirs
 
 from jobdesk import checks as query_checks
 from jobdesk import estimate as cost
-from jobdesk import keys, metadata, phases, provenance, results
+from jobdesk import analyses, keys, metadata, phases, provenance, results
 from jobdesk import uploads as upload_tables
 from jobdesk.errors import (
     BadServiceURL, CacheCorrupt, GroupCacheWarning, JobAborted, JobdeskError, JobFailed, JobLost,
@@ -93,7 +93,7 @@ class Desk:
     def submit(self, service, adql: str, *, maxrec: int | None = None, uploads=None,
                label: str | None = None, refresh: bool = False, max_age=None,
                fmt: str = "votable", publish: bool = True, check: bool = True,
-               estimate: bool = False) -> "Job":
+               estimate: bool = False, analysis: str | None = None) -> "Job":
         """Run ``adql`` on ``service`` as an async job, or return the job that already did.
 
         Idempotent: the same query (same key) gives the same job, running or finished, in any
@@ -101,7 +101,29 @@ class Desk:
         cached results older than that.  ``check=True`` checks the query against the cached
         metadata first: errors raise ``QueryRejected`` before any request, warnings show once
         as ``QueryCheckWarning``.  ``estimate=True`` measures the cost first and shows it.
+        ``analysis`` (or an enclosing ``desk.analysis(name)``) appends the job to that analysis;
+        an upload that is a jobdesk result (a Job, or a table loaded from one) is recorded as a
+        dependency on the job that made it.
         """
+        name = analysis if analysis is not None else analyses.current()
+        sources = analyses.upload_sources(uploads) if name is not None else {}
+        if uploads:
+            uploads = {k: (v.table() if isinstance(v, Job) else v) for k, v in uploads.items()}
+        job = self._submit_one(service, adql, maxrec=maxrec, uploads=uploads, label=label,
+                               refresh=refresh, max_age=max_age, fmt=fmt, publish=publish,
+                               check=check, estimate=estimate)
+        if name is not None:
+            analyses.check_name(name)
+            depends = {}
+            for upload, key in sources.items():
+                made = self.index.find(key, reuse=lambda r: True)
+                if made is not None:
+                    depends[upload] = made["id"]
+            self.index.add_step(name, job.id, depends)
+        return job
+
+    def _submit_one(self, service, adql: str, *, maxrec, uploads, label, refresh, max_age, fmt,
+                    publish, check, estimate) -> "Job":
         url, session = self._unwrap(service)
         sid = keys.service_id(url)
         if session is not None:
@@ -385,6 +407,52 @@ class Desk:
         for f in found:
             if f.code not in ("no-metadata", "top-no-order"):  # the latter: NotRepeatableWarning
                 warnings.warn(QueryCheckWarning(str(f)), stacklevel=4)
+
+    # --- analyses, re-runs and comparisons (see jobdesk.analyses, jobdesk.compare) -------------
+
+    def analysis(self, name: str):
+        """A context: every ``submit`` inside it (without ``analysis=``) joins analysis ``name``."""
+        return analyses.active(name)
+
+    def analyses(self) -> list[dict]:
+        """Every analysis on this desk, newest first: name, steps, created, updated, plans."""
+        plans: dict[str, list[str]] = {}
+        for p in self.index.plans():
+            plans.setdefault(p["analysis"], []).append(p["id"])
+        return [a | {"plans": plans.get(a["name"], [])} for a in self.index.analyses()]
+
+    def analysis_jobs(self, name: str) -> list["Job"]:
+        """The analysis's jobs in step order (a forgotten job is left out)."""
+        steps = self.index.steps(name)
+        if not steps:
+            raise analyses.AnalysisNotFound(f"no analysis named {name!r} on this desk ({self.root})")
+        return [Job(self, s["job_id"]) for s in steps if self.index.get(s["job_id"])]
+
+    def rerun(self, name: str, *, rename: dict[str, str] | None = None, service=None,
+              into: str | None = None) -> "analyses.Plan":
+        """Plan a re-run of analysis ``name`` with tables and columns renamed (a new release);
+        the same arguments find the same plan again. Nothing runs before ``plan.start()``."""
+        url = self._unwrap(service)[0] if service is not None else None
+        return analyses.make_plan(self, name, dict(rename or {}), url, into)
+
+    def plan(self, plan_id: str) -> "analyses.Plan":
+        """A re-run plan by its id (``KeyError`` when unknown)."""
+        record = self.index.plan(plan_id)
+        if record is None:
+            raise KeyError(f"no re-run plan {plan_id!r} in {self.root}")
+        return analyses.Plan(self, record)
+
+    def compare(self, old, new, *, key: str | None = None, tolerance: float = 0.0):
+        """Compare two finished results (Jobs or job ids) row by row through ``key`` (default:
+        the column whose UCD is ``meta.id;meta.main``); see ``jobdesk.compare``."""
+        from jobdesk.compare import compare_files
+        old = old if isinstance(old, Job) else self.job(old)
+        new = new if isinstance(new, Job) else self.job(new)
+        result = compare_files(old._result_path(False), new._result_path(False), key=key,
+                               tolerance=tolerance)
+        result.old = {"job": old.id, "provenance": old.provenance()}
+        result.new = {"job": new.id, "provenance": new.provenance()}
+        return result
 
     # --- group caches (see jobdesk.groups) ------------------------------------------------------
 

@@ -143,6 +143,39 @@ class WaitTimeout(JobdeskError, TimeoutError):
     hint = "call wait() again later, or leave it: the job record survives kernel restarts"
 
 
+# --- analyses, re-runs and comparisons ----------------------------------------------------------
+
+
+class AnalysisError(JobdeskError):
+    """An analysis, a re-run or a comparison cannot be made as asked."""
+
+
+class AnalysisNotFound(AnalysisError, KeyError):
+    """No analysis of that name on this desk."""
+
+    hint = "list them with desk.analyses() or `jobdesk analyses`"
+
+    def __str__(self) -> str:  # KeyError would quote the message
+        return JobdeskError.__str__(self)
+
+
+class RenameInvalid(AnalysisError):
+    """A re-run's renames do not fit: a source name no step uses, a target the new release
+    lacks, or a name the rewritten queries read that the new release does not have."""
+
+    hint = "fix the rename mapping (old name -> new name) and call rerun() again; nothing ran"
+
+    def __init__(self, message: str, *, problems: list[str] | None = None, **kw):
+        super().__init__(message, **kw)
+        self.problems = list(problems or [])
+
+
+class CompareKeyInvalid(AnalysisError):
+    """Two results cannot be matched row by row: no key column, or a key that repeats."""
+
+    hint = "name a column whose values are unique in both results: compare(..., key='column')"
+
+
 # --- results and the cache --------------------------------------------------------------------
 
 

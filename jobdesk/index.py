@@ -40,10 +40,11 @@ JOB_COLUMNS: dict[str, type] = {
     "result_bytes": int, "result_stat": str, "parquet_sha256": str, "parquet_stat": str,
     "error": str, "notebook": str, "user": str, "host": str, "requests": int, "owner": str,
     "lease_until": float, "layer": str, "warnings": str, "server": str, "estimate": str,
+    "analysis": str,
 }
 
 MIGRATIONS: list[Callable[[sqlite_utils.Database], None]] = []
-_LATER_COLUMNS = ("estimate",)   # added to jobs by a later migration, not by the first
+_LATER_COLUMNS = ("estimate", "analysis")   # added to jobs by a later migration, not by the first
 
 
 def _migration(fn: Callable[[sqlite_utils.Database], None]) -> Callable:
@@ -112,6 +113,21 @@ def _add_service_metadata(db: sqlite_utils.Database) -> None:
                "tokenize = 'unicode61 remove_diacritics 2')")
     # The estimate measured before a job was sent (submit(..., estimate=True)), as JSON.
     db.execute("ALTER TABLE jobs ADD COLUMN estimate TEXT")
+
+
+@_migration
+def _add_analyses_and_plans(db: sqlite_utils.Database) -> None:
+    # Analyses (named chains of jobs in the order they were submitted; one job may belong to
+    # several) and release re-run plans, so a re-run survives kernel restarts like its jobs.
+    # ``analysis`` on a job is the first analysis it joined, for listings that group by it.
+    db.execute("ALTER TABLE jobs ADD COLUMN analysis TEXT")
+    db.execute(db.create_table_sql("analysis_steps", {
+        "analysis": str, "step": int, "job_id": str, "depends": str, "added": float},
+        pk=("analysis", "step")))
+    db.execute("CREATE UNIQUE INDEX idx_analysis_steps_job ON analysis_steps (analysis, job_id)")
+    db.execute(db.create_table_sql("plans", {
+        "id": str, "analysis": str, "into_name": str, "args": str, "created": float,
+        "updated": float, "state": str}, pk="id"))
 
 
 SCHEMA_VERSION = len(MIGRATIONS)
@@ -510,6 +526,71 @@ class Index:
                 "WHERE service = ? AND phase = 'COMPLETED' AND submitted IS NOT NULL "
                 "AND finished IS NOT NULL AND job_url IS NOT NULL "
                 "ORDER BY finished DESC LIMIT ?", [service, int(limit)]).fetchall()]
+
+    # --- analyses and re-run plans ------------------------------------------------------------
+
+    def add_step(self, analysis: str, job_id: str, depends: dict | None = None) -> int:
+        """Append a job to an analysis (once: a repeated submit keeps its first place); the
+        step number. ``depends`` maps upload names to the job ids whose results they send."""
+        with self._write() as conn:
+            row = conn.execute("SELECT step FROM analysis_steps WHERE analysis = ? AND job_id = ?",
+                               [analysis, job_id]).fetchone()
+            if row is not None:
+                return row[0]
+            step = conn.execute("SELECT coalesce(max(step), 0) + 1 FROM analysis_steps "
+                                "WHERE analysis = ?", [analysis]).fetchone()[0]
+            conn.execute("INSERT INTO analysis_steps (analysis, step, job_id, depends, added) "
+                         "VALUES (?, ?, ?, ?, ?)",
+                         [analysis, step, job_id, json.dumps(depends or {}, sort_keys=True),
+                          time.time()])
+            conn.execute("UPDATE jobs SET analysis = ?, updated = ? WHERE id = ? "
+                         "AND analysis IS NULL", [analysis, time.time(), job_id])
+        return step
+
+    def steps(self, analysis: str) -> list[dict]:
+        """The analysis's steps in order: {step, job_id, depends, added}."""
+        with self._lock:
+            rows = self.db.execute("SELECT step, job_id, depends, added FROM analysis_steps "
+                                   "WHERE analysis = ? ORDER BY step", [analysis]).fetchall()
+        return [{"step": s, "job_id": j, "depends": json.loads(d or "{}"), "added": a}
+                for s, j, d, a in rows]
+
+    def analyses(self) -> list[dict]:
+        """Every analysis: name, steps, first and last addition, newest first."""
+        with self._lock:
+            rows = self.db.execute("SELECT analysis, count(*), min(added), max(added) "
+                                   "FROM analysis_steps GROUP BY analysis "
+                                   "ORDER BY max(added) DESC").fetchall()
+        return [{"name": n, "steps": c, "created": lo, "updated": hi} for n, c, lo, hi in rows]
+
+    def save_plan(self, plan_id: str, analysis: str, into: str, args: dict,
+                  state: dict) -> None:
+        """Insert or replace a re-run plan (its arguments and its steps' state, as JSON)."""
+        now = time.time()
+        with self._write() as conn:
+            conn.execute("INSERT INTO plans (id, analysis, into_name, args, created, updated, "
+                         "state) VALUES (?, ?, ?, ?, ?, ?, ?) ON CONFLICT (id) DO UPDATE SET "
+                         "state = excluded.state, updated = excluded.updated",
+                         [plan_id, analysis, into, json.dumps(args, sort_keys=True), now, now,
+                          json.dumps(state, sort_keys=True)])
+
+    def plan(self, plan_id: str) -> dict | None:
+        with self._lock:
+            cur = self.db.execute("SELECT * FROM plans WHERE id = ?", [plan_id])
+            row = cur.fetchone()
+            cols = [d[0] for d in cur.description]
+        if row is None:
+            return None
+        out = dict(zip(cols, row))
+        out["args"], out["state"] = json.loads(out["args"]), json.loads(out["state"])
+        return out
+
+    def plans(self, analysis: str | None = None) -> list[dict]:
+        with self._lock:
+            ids = [r[0] for r in self.db.execute(
+                "SELECT id FROM plans WHERE ? IS NULL OR analysis = ? ORDER BY created DESC",
+                [analysis, analysis]).fetchall()]
+        return [self.plan(i) for i in ids]
 
     def referenced_objects(self) -> set[str]:
         """Every checksum some record points at (eviction must keep these files)."""

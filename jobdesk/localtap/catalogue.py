@@ -6,6 +6,11 @@ geometry is easy to get wrong: a dense patch around (10, -30), caps at both cele
 band straddling RA = 0/360; some values are NULL.  The SQLite file is built into a temporary
 file and renamed, so a killed build leaves nothing half-written, and it is re-used when one with
 the same row count, seed and layout version exists.
+
+A second release (schema ``orrery_r2``) is served beside the first, derived from it with a fixed
+seed the way a survey's next release differs from its last: some sources removed, some added,
+positions, parallaxes and magnitudes moved within their errors, a few sources reclassified,
+``class_label`` renamed ``source_class`` and a column ``visit_count`` added (docs/localtap.md).
 """
 
 from __future__ import annotations
@@ -20,7 +25,7 @@ import numpy as np
 from .tapschema import Column, ForeignKey, SchemaInfo, TableInfo
 
 SCHEMA = "orrery"
-LAYOUT_VERSION = 2
+LAYOUT_VERSION = 3
 ORRERY_ID_BASE = 3_100_000  # invented: ids run upwards from here in steps of 1 to 5
 VISIT_EVERY = 4        # every 4th source has a light curve ...
 VISITS_PER_SOURCE = 4  # ... of this many visits
@@ -71,7 +76,31 @@ VISITS = TableInfo(SCHEMA, "visits", "Single-visit photometry of every fourth so
 ], foreign_keys=[ForeignKey("orrery_visits_source", "orrery.visits", "orrery.sources",
                             [("orrery_id", "orrery_id")], "each visit belongs to one source")])
 
-TABLES = [SOURCES, VISITS]
+# --- the second release ------------------------------------------------------------------------
+
+SCHEMA_R2 = "orrery_r2"
+SCHEMA_INFO_R2 = SchemaInfo(SCHEMA_R2, "Orrery Wide Sky Census, second release (demo data)")
+R2_REMOVED = 0.02      # fraction of first-release sources dropped
+R2_ADDED = 0.03        # new sources, as a fraction of the first release
+R2_RECLASSIFIED = 0.01
+R2_MAG_MOVED = 0.4     # fraction of sources whose magnitudes were re-measured
+
+SOURCES_R2 = TableInfo(SCHEMA_R2, "sources", "One row per source of the second release", [
+    *(c.renamed("source_class") if c.name == "class_label" else c for c in SOURCES.columns),
+    _col("visit_count", "short", None, "meta.number;obs", "single-visit measurements of this "
+         "source in orrery_r2.visits"),
+])
+VISITS_R2 = TableInfo(SCHEMA_R2, "visits", "Single-visit photometry of the second release",
+                      list(VISITS.columns),
+                      foreign_keys=[ForeignKey("orrery_r2_visits_source", "orrery_r2.visits",
+                                               "orrery_r2.sources", [("orrery_id", "orrery_id")],
+                                               "each visit belongs to one source")])
+
+TABLES = [SOURCES, VISITS, SOURCES_R2, VISITS_R2]
+SCHEMAS = [SCHEMA_INFO, SCHEMA_INFO_R2]
+# SQLite table of each published table (both releases live in one file)
+PHYSICAL = {SOURCES.qualified: "sources", VISITS.qualified: "visits",
+            SOURCES_R2.qualified: "r2_sources", VISITS_R2.qualified: "r2_visits"}
 
 
 def catalogue_path(state_dir: Path, rows: int, seed: int) -> Path:
@@ -107,7 +136,7 @@ def _sql_type(c: Column) -> str:
 def _create(conn: sqlite3.Connection, table: TableInfo, primary: str) -> None:
     cols = ", ".join(f"{c.name} {_sql_type(c)}" + (" PRIMARY KEY" if c.name == primary else "")
                      for c in table.columns)
-    conn.execute(f"CREATE TABLE {table.name} ({cols})")
+    conn.execute(f"CREATE TABLE {PHYSICAL[table.qualified]} ({cols})")
 
 
 def _with_nulls(values: np.ndarray, null: np.ndarray) -> list:
@@ -121,7 +150,8 @@ def _insert(conn: sqlite3.Connection, table: TableInfo, columns: list[list], bat
     n = len(columns[0])
     for start in range(0, n, batch):
         chunk = [c[start:start + batch] for c in columns]
-        conn.executemany(f"INSERT INTO {table.name} VALUES ({marks})", zip(*chunk))
+        conn.executemany(f"INSERT INTO {PHYSICAL[table.qualified]} VALUES ({marks})",
+                         zip(*chunk))
 
 
 def generate_sources(rows: int, seed: int) -> dict[str, np.ndarray]:
@@ -196,6 +226,46 @@ def generate_visits(src: dict[str, np.ndarray], seed: int) -> dict[str, np.ndarr
     }
 
 
+def release_two(src: dict[str, np.ndarray], visits: dict[str, np.ndarray], seed: int
+                ) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
+    """The second release's sources and visits, derived from the first's with a fixed seed."""
+    rng = np.random.default_rng([seed, 2])
+    n = len(src["orrery_id"])
+    keep = rng.random(n) >= R2_REMOVED
+    out = {k: v[keep].copy() for k, v in src.items()}
+    m = int(keep.sum())
+    # positions move by a few mas, parallaxes within their (now 10% smaller) errors
+    scatter = 5e-3 / 3600.0
+    out["dec"] = np.clip(out["dec"] + rng.normal(0.0, scatter, m), -90.0, 90.0)
+    out["ra"] = (out["ra"] + rng.normal(0.0, scatter, m)
+                 / np.maximum(np.cos(np.radians(out["dec"])), 1e-3)) % 360.0
+    out["parallax_sigma"] = np.round(out["parallax_sigma"] * 0.9, 4)
+    out["parallax"] = np.round(out["parallax"] + rng.normal(0.0, 1.0, m) * out["parallax_sigma"], 4)
+    moved = rng.random(m) < R2_MAG_MOVED
+    for band in ("mag_cyan", "mag_lime", "mag_rose"):
+        out[band] = np.where(moved, np.round(out[band] + rng.normal(0.0, 0.01, m), 4), out[band])
+    out["cyan_rose"] = np.round(out["mag_cyan"] - out["mag_rose"], 4)
+    flip = (rng.random(m) < R2_RECLASSIFIED) & (out["class_label"] != None)  # noqa: E711
+    out["class_label"] = np.where(flip, np.where(out["class_label"] == "star", "galaxy", "star"),
+                                  out["class_label"])
+    added = max(1, int(round(n * R2_ADDED)))
+    extra = generate_sources(added, seed + 1)
+    extra["orrery_id"] = (src["orrery_id"].max()
+                          + np.cumsum(rng.integers(1, 6, added), dtype=np.int64))
+    out = {k: np.concatenate([out[k], extra[k]]) for k in out}
+    out["source_class"] = out.pop("class_label")
+    kept_visits = np.isin(visits["orrery_id"], out["orrery_id"])
+    v2 = {k: v[kept_visits].copy() for k, v in visits.items()}
+    v2["mag"] = np.round(v2["mag"] + rng.normal(0.0, 1.0, len(v2["mag"])) * v2["mag_sigma"] * 0.5, 4)
+    ids, counts = np.unique(v2["orrery_id"], return_counts=True)
+    out["visit_count"] = np.zeros(len(out["orrery_id"]), dtype=np.int64)
+    if len(ids):
+        where = np.minimum(np.searchsorted(ids, out["orrery_id"]), len(ids) - 1)
+        found = ids[where] == out["orrery_id"]
+        out["visit_count"][found] = counts[where[found]]
+    return out, v2
+
+
 def _columns(table: TableInfo, data: dict[str, np.ndarray]) -> list[list]:
     out = []
     for c in table.columns:
@@ -214,11 +284,19 @@ def _build(path: Path, rows: int, seed: int) -> None:
         conn.execute("PRAGMA synchronous=OFF")
         _create(conn, SOURCES, "orrery_id")
         _create(conn, VISITS, "visit_id")
+        _create(conn, SOURCES_R2, "orrery_id")
+        _create(conn, VISITS_R2, "visit_id")
         src = generate_sources(rows, seed)
+        visits = generate_visits(src, seed)
         _insert(conn, SOURCES, _columns(SOURCES, src))
-        _insert(conn, VISITS, _columns(VISITS, generate_visits(src, seed)))
+        _insert(conn, VISITS, _columns(VISITS, visits))
+        src2, visits2 = release_two(src, visits, seed)
+        _insert(conn, SOURCES_R2, _columns(SOURCES_R2, src2))
+        _insert(conn, VISITS_R2, _columns(VISITS_R2, visits2))
         conn.execute("CREATE INDEX sources_dec ON sources (dec)")
         conn.execute("CREATE INDEX visits_source ON visits (orrery_id)")
+        conn.execute("CREATE INDEX r2_sources_dec ON r2_sources (dec)")
+        conn.execute("CREATE INDEX r2_visits_source ON r2_visits (orrery_id)")
         conn.execute("CREATE TABLE build_info (rows INTEGER, seed INTEGER, layout INTEGER)")
         conn.execute("INSERT INTO build_info VALUES (?, ?, ?)", (rows, seed, LAYOUT_VERSION))
         conn.commit()

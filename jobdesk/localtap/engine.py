@@ -59,7 +59,7 @@ class Engine:
         if len(set(n.lower() for n in names)) != len(names):
             raise ValueError(f"two user files map to the same table name: {names}")
         schemas = [SchemaInfo(TAP_SCHEMA, "Metadata of this service (TAP 1.1 §4)"),
-                   catalogue.SCHEMA_INFO]
+                   *catalogue.SCHEMAS]
         if user:
             schemas.append(SchemaInfo(USER_SCHEMA, "Tables served from the user's own files"))
         self._tables: list[TableInfo] = [*TAP_SCHEMA_TABLES, *catalogue.TABLES,
@@ -69,7 +69,7 @@ class Engine:
         for t in TAP_SCHEMA_TABLES:
             self._resolved.append(Resolved(t, "aux", physical_name(t)))
         for t in catalogue.TABLES:
-            self._resolved.append(Resolved(t, "main", t.name))
+            self._resolved.append(Resolved(t, "main", catalogue.PHYSICAL[t.qualified]))
         for t, _ in user:
             self._resolved.append(Resolved(t, "aux", physical_name(t), _positional(t.columns)))
 
