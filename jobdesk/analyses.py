@@ -108,7 +108,8 @@ class Plan:
         if s.get("error"):
             return FAILED
         if not s.get("new_job"):
-            bad = [d for d in s["depends"].values() if self._by_step(d).get("error")]
+            bad = [d for d in s["depends"].values()
+                   if self._step_state(self._by_step(d)) in (FAILED, BLOCKED)]
             return BLOCKED if bad else WAITING
         record = self.desk.index.get(s["new_job"])
         if record is None:

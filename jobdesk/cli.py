@@ -267,6 +267,90 @@ def cmd_estimate(args) -> int:
     return 0
 
 
+def cmd_analyses(args) -> int:
+    desk = _desk(args)
+    if args.name:
+        jobs = desk.analysis_jobs(args.name)
+        if args.json:
+            print(json.dumps([j.record for j in jobs], indent=1))
+        else:
+            for n, job in enumerate(jobs, 1):
+                print(f"{n:>3}  {_row(job)}")
+        return 0
+    listed = desk.analyses()
+    if args.json:
+        print(json.dumps(listed, indent=1))
+        return 0
+    if not listed:
+        print(f"no analyses recorded in {desk.root}")
+    for a in listed:
+        plans = f"  re-run plans: {', '.join(a['plans'])}" if a["plans"] else ""
+        print(f"{a['name']:<32} {a['steps']:>3} steps  last {_when(a['updated'])}{plans}")
+    return 0
+
+
+def _renames(pairs) -> dict[str, str]:
+    out = {}
+    for pair in pairs or []:
+        old, sep, new = pair.partition("=")
+        if not sep or not old.strip() or not new.strip():
+            raise KeyError(f"--rename takes OLD=NEW, got {pair!r}")
+        out[old.strip()] = new.strip()
+    return out
+
+
+def cmd_rerun(args) -> int:
+    plan = _desk(args).rerun(args.name, rename=_renames(args.rename), service=args.service,
+                             into=args.into)
+    if args.start or args.wait:
+        plan.start()
+    if args.wait:
+        plan.wait()
+    if args.json:
+        print(json.dumps(plan.as_dict(), indent=1, default=str))
+        return 1 if plan.failed and plan.finished else 0
+    print(f"re-run plan {plan.id}: {plan.analysis} -> {plan.into}")
+    for s in plan.steps:
+        print(f"\n step {s['step']} [{s['state']}] old job {s['old_job']}"
+              + (f", new job {s['new_job']}" if s.get("new_job") else ""))
+        if s["old_adql"] != s["new_adql"]:
+            print("   old: " + s["old_adql"].strip().replace("\n", "\n        "))
+        print("   new: " + s["new_adql"].strip().replace("\n", "\n        "))
+    for f in plan.failed:
+        print(f"step {f['step']} failed: {f['error']}", file=sys.stderr)
+    if not (args.start or args.wait):
+        print("\nnothing ran yet: add --start (or call plan.start() in Python)")
+    return 1 if plan.failed and plan.finished else 0
+
+
+def cmd_compare(args) -> int:
+    result = _desk(args).compare(args.old, args.new, key=args.key, tolerance=args.tolerance)
+    if args.report:
+        result.report(args.report)
+    if args.json:
+        summary = result.as_dict()
+        summary.pop("sky", None)
+        print(json.dumps(summary, indent=1))
+        return 0
+    print(f"key {result.key}: {result.rows_old} old rows, {result.rows_new} new rows")
+    print(f"  matched {result.matched}, added {result.added}, removed {result.removed}, "
+          f"matched rows changed {result.changed_rows}")
+    for name, change in result.columns.items():
+        if change.changed:
+            spread = (f"  median |diff| {change.median_abs:.6g}, largest {change.max_abs:.6g}"
+                      if change.max_abs is not None else "")
+            print(f"  {name:<24} {change.changed:>9} changed{spread}")
+    if result.columns_added or result.columns_removed:
+        print(f"  columns added: {', '.join(result.columns_added) or '-'}; "
+              f"removed: {', '.join(result.columns_removed) or '-'}")
+    for r in result.columns_retyped:
+        print(f"  column {r['name']}: {r['type_old']} [{r['unit_old'] or ''}] -> "
+              f"{r['type_new']} [{r['unit_new'] or ''}]")
+    if args.report:
+        print(f"report: {args.report}")
+    return 0
+
+
 def cmd_demo(args) -> int:
     from jobdesk.demo import run
     return run(root=args.root, rows=args.rows)
@@ -397,6 +481,33 @@ def parser() -> argparse.ArgumentParser:
     s.add_argument("--umask", default="0002", help="group policy umask (0002 or 0022)")
     s.add_argument("--unix-group", help="group that owns the files (default: the directory's)")
     s.set_defaults(func=cmd_group_init)
+
+    s = sub.add_parser("analyses", help="list analyses, or one analysis's jobs in step order")
+    s.add_argument("name", nargs="?")
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_analyses)
+
+    s = sub.add_parser("rerun", help="plan (and --start) an analysis again with renamed tables "
+                                     "and columns, e.g. on a new data release")
+    s.add_argument("name")
+    s.add_argument("--rename", action="append", metavar="OLD=NEW",
+                   help="schema.table=schema.table or column=column (repeatable)")
+    s.add_argument("--service", help="run the steps on this TAP service instead")
+    s.add_argument("--into", help="name of the new analysis (default NAME@DATE)")
+    s.add_argument("--start", action="store_true", help="submit the steps now")
+    s.add_argument("--wait", action="store_true", help="submit and wait for every step")
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_rerun)
+
+    s = sub.add_parser("compare", help="what changed between two results, row by row by key")
+    s.add_argument("old")
+    s.add_argument("new")
+    s.add_argument("--key", help="key column (default: the one with UCD meta.id;meta.main)")
+    s.add_argument("--tolerance", type=float, default=0.0,
+                   help="absolute tolerance for floats (default 0: exact)")
+    s.add_argument("--report", help="write an HTML report here (and a .json twin)")
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_compare)
 
     s = sub.add_parser("demo", help="the whole story, offline, on the embedded TAP service")
     s.add_argument("--rows", type=int, default=20000, help="size of the demo catalogue")

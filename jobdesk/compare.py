@@ -189,9 +189,7 @@ def _key_codes(a: pa.Array, b: pa.Array) -> tuple[np.ndarray, np.ndarray]:
     return codes[:len(a)], codes[len(a):]
 
 
-def _check_key(values: np.ndarray, order: np.ndarray, nulls: int, side: str, key: str) -> None:
-    if nulls:
-        raise CompareKeyInvalid(f"key {key!r}: {nulls} rows of the {side} result have no value")
+def _check_key(values: np.ndarray, order: np.ndarray, side: str, key: str) -> None:
     s = values[order]
     same = s[1:] == s[:-1]
     if same.any():
@@ -301,10 +299,14 @@ def compare_files(old: Path, new: Path, *, key: str | None = None,
     mo, mn = _meta(pq.read_schema(old)), _meta(pq.read_schema(new))
     key = find_key(mo, mn, key)
     ka, kb = _read(old, key), _read(new, key)
+    for side, arr in (("old", ka), ("new", kb)):
+        if arr.null_count:
+            raise CompareKeyInvalid(f"key {key!r}: {arr.null_count} rows of the {side} result "
+                                    "have no value")
     ko, kn = _key_codes(ka, kb)
     oo, on = np.argsort(ko, kind="stable"), np.argsort(kn, kind="stable")
-    _check_key(ko, oo, ka.null_count, "old", key)
-    _check_key(kn, on, kb.null_count, "new", key)
+    _check_key(ko, oo, "old", key)
+    _check_key(kn, on, "new", key)
     del ka, kb
     io, inew, removed, added = _match(ko, kn, oo, on)
     del ko, kn, oo, on

@@ -116,6 +116,15 @@ def rewrite(adql: str, renames: dict[str, str]) -> Rewritten:
     tables = {Name.parse(k).folded: (k, Name.parse(v)) for k, v in renames.items() if "." in k}
     columns = {Name.parse(k).folded[0]: (k, Name.parse(v)) for k, v in renames.items()
                if "." not in k}
+    # a delimited "name" matches a rename spelled exactly so (services that fold regular
+    # identifiers to lower case, as PostgreSQL does, treat "ra" and ra alike)
+    exact = {Name.parse(k).parts[0][0]: (k, Name.parse(v)) for k, v in renames.items()
+             if "." not in k}
+
+    def column_rename(ident: exp.Identifier):
+        if ident.args.get("quoted"):
+            return exact.get(ident.this)
+        return columns.get(_fold(ident))
     out = Rewritten(adql)
     edits: list[tuple[int, int, str]] = []   # (start, end inclusive, replacement)
 
@@ -172,7 +181,7 @@ def rewrite(adql: str, renames: dict[str, str]) -> Rewritten:
                 new = renamed_bare[qfold[-1]]
                 if _fold_name(new.parts[-1]) != qfold[-1]:
                     edits.append((_start(qual[-1]), _end(qual[-1]), new.bare))
-        hit = columns.get(_fold(name))
+        hit = column_rename(name)
         if hit is not None and not (not qual and _fold(name) in output_aliases
                                     and id(col) not in selects):
             source, new = hit
@@ -186,8 +195,8 @@ def rewrite(adql: str, renames: dict[str, str]) -> Rewritten:
             out.columns.append((qfold[-1] if qfold else None, _fold(name)))
     for join in tree.find_all(exp.Join):                  # JOIN ... USING (a, b)
         for ident in join.args.get("using") or []:
-            if isinstance(ident, exp.Identifier) and _fold(ident) in columns:
-                source, new = columns[_fold(ident)]
+            if isinstance(ident, exp.Identifier) and column_rename(ident) is not None:
+                source, new = column_rename(ident)
                 edits.append((_start(ident), _end(ident), new.spelled()))
                 out.used.add(source)
 
