@@ -82,6 +82,23 @@ def main() -> None:
         root = ET.parse(args["path"]).getroot()
         out["tables"] = sum(1 for e in root.iter() if e.tag == "table")
         out["seconds"] = time.perf_counter() - started
+    elif mode == "compare":
+        from jobdesk.compare import compare_files
+
+        base = reset_peak()
+        started = time.perf_counter()
+        result = compare_files(args["old"], args["new"], key=args["key"])
+        out["seconds"] = time.perf_counter() - started
+        out.update(added=result.added, removed=result.removed, matched=result.matched,
+                   changed_rows=result.changed_rows)
+    elif mode == "read_parquet":
+        import pyarrow.parquet as pq
+
+        base = reset_peak()
+        started = time.perf_counter()
+        rows = sum(pq.read_table(p).num_rows for p in (args["old"], args["new"]))
+        out["seconds"] = time.perf_counter() - started
+        out["rows"] = rows
     else:
         raise SystemExit(f"unknown mode {mode!r}")
     out["baseline_kb"] = base

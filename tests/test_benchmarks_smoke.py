@@ -14,7 +14,8 @@ from pathlib import Path
 import pytest
 
 ROOT = Path(__file__).resolve().parent.parent
-CASES = ("case1", "case2", "case3", "case4", "case5", "case6", "case7")
+CASES = ("case1", "case2", "case3", "case4", "case5", "case6", "case7", "case8",
+         "case9")
 
 
 @pytest.mark.timeout(600)
