@@ -16,6 +16,12 @@ Routes::
     POST   jobs/<id>/abort           abort on the service            {"job": {...}}
     GET    jobs/<id>/preview?rows=N  columns, first rows, totals     (from the cache, no kernel)
     GET    jobs/<id>/snippet         {"snippet": "python source"}
+    GET    analyses                  {"analyses": Desk.analyses()}
+    GET    analyses/steps?name=NAME  {"name", "jobs": [records in step order], "plans": [...]}
+    GET    plans/<id>                a re-run plan: steps, states, failures
+    POST   plans/<id>/start          submit the steps that can run now   {"plan": {...}}
+    GET    compare/<old>/<new>?key=K Desk.compare(...).as_dict()
+    GET    compare/<old>/<new>/report?key=K   the self-contained HTML report (text/html)
     GET    cache                     Desk.cache_summary()
     GET    changes?since=<token>     {"token": t, "changed": bool}; waits while nothing changed
 """
@@ -269,6 +275,67 @@ class SnippetHandler(DeskHandler):
         self.reply({"snippet": await self.call(lambda desk: desk.job(job_id).snippet())})
 
 
+def _analysis_steps(desk, name: str) -> dict:
+    return {"name": name, "jobs": [j.record for j in desk.analysis_jobs(name)],
+            "plans": [p["id"] for p in desk.index.plans(name)]}
+
+
+def _compare(desk, old: str, new: str, key: str | None) -> dict:
+    summary = desk.compare(old, new, key=key).as_dict()
+    return summary
+
+
+def _compare_report(desk, old: str, new: str, key: str | None) -> str:
+    path = desk.root / "reports" / f"{old}-{new}{'-' + key if key else ''}.html"
+    desk.compare(old, new, key=key).report(path)
+    return path.read_text(encoding="utf-8")
+
+
+class AnalysesHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def get(self) -> None:
+        self.reply({"analyses": await self.call(lambda desk: desk.analyses())})
+
+
+class AnalysisStepsHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def get(self) -> None:
+        name = self.get_argument("name", "")
+        if not name or len(name) > 200:
+            raise tornado.web.HTTPError(400, reason="name the analysis: ?name=NAME")
+        self.reply(await self.call(_analysis_steps, name))
+
+
+class PlanHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def get(self, raw_id: str) -> None:
+        plan_id = self.job_id(raw_id)
+        self.reply(await self.call(lambda desk: desk.plan(plan_id).as_dict()))
+
+
+class PlanStartHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def post(self, raw_id: str) -> None:
+        plan_id = self.job_id(raw_id)
+        self.reply({"plan": await self.call(lambda desk: desk.plan(plan_id).start().as_dict())})
+
+
+class CompareHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def get(self, raw_old: str, raw_new: str, report: str | None = None) -> None:
+        old, new = self.job_id(raw_old), self.job_id(raw_new)
+        key = self.get_argument("key", None) or None
+        if report:
+            page = await self.call(_compare_report, old, new, key)
+            self.set_header("Content-Type", "text/html; charset=utf-8")
+            self.set_header("Cache-Control", "no-store")
+            self.set_header("Content-Security-Policy", "default-src 'none'; style-src 'unsafe-inline'")
+            # APIHandler.finish would label the page application/json
+            tornado.web.RequestHandler.finish(self, page)
+            return
+        self.reply(await self.call(_compare, old, new, key))
+
+
 class CacheHandler(DeskHandler):
     @tornado.web.authenticated
     async def get(self) -> None:
@@ -298,6 +365,11 @@ def routes() -> list[tuple[str, type[DeskHandler]]]:
         (one + r"/abort", AbortHandler),
         (one + r"/preview", PreviewHandler),
         (one + r"/snippet", SnippetHandler),
+        (r"analyses", AnalysesHandler),
+        (r"analyses/steps", AnalysisStepsHandler),
+        (r"plans/([^/]+)", PlanHandler),
+        (r"plans/([^/]+)/start", PlanStartHandler),
+        (r"compare/([^/]+)/([^/]+?)(/report)?", CompareHandler),
         (r"cache", CacheHandler),
         (r"changes", ChangesHandler),
     ]
