@@ -2,7 +2,8 @@
 
 It starts ``jobdesk.localtap`` on loopback with an invented catalogue, then walks through what a
 user meets: an async job with progress, a kernel killed mid-job and the same server job picked
-up again, a result truncated by MAXREC, a bad query's message, and a cache hit with the service down.
+up again, a result truncated by MAXREC, a bad query's message, a cache hit with the service
+down, and an analysis re-run on the catalogue's second release with a report of what changed.
 The jobs land in the normal desk (``$JOBDESK_HOME``), so the JupyterLab sidebar shows them.
 """
 
@@ -120,4 +121,54 @@ def run(root=None, rows: int = 20000) -> int:
               "\n   or open JupyterLab and the 'Job desk' sidebar.")
     finally:
         tap.stop()
+    tap = localtap.spawn(state=state, rows=rows)   # up again (the same catalogue, re-used)
+    try:
+        _rerun_story(desk, tap.url, state)
+    finally:
+        tap.stop()
     return 0
+
+
+RELEASE = {"orrery.sources": "orrery_r2.sources", "orrery.visits": "orrery_r2.visits",
+           "class_label": "source_class"}
+
+
+def _rerun_story(desk, url: str, state: str) -> None:
+    """Steps 7-9: an analysis, its re-run on the second release, and what changed."""
+    import datetime as _dt
+    from pathlib import Path
+
+    name = "demo stream search " + _dt.datetime.now().strftime("%Y-%m-%d %H:%M:%S")
+    stars = ("SELECT orrery_id, ra, dec, parallax, class_label FROM orrery.sources\n"
+             "WHERE dec > 60 AND class_label = 'star'  -- class_label as published\n"
+             "ORDER BY orrery_id")
+    visits = ("SELECT v.orrery_id, count(*) AS n_visits FROM orrery.visits AS v\n"
+              "JOIN TAP_UPLOAD.mine AS m ON m.orrery_id = v.orrery_id\n"
+              "GROUP BY v.orrery_id ORDER BY v.orrery_id")
+    _say("7. An analysis: two steps, the second uploads the first's result", stars + "\n\n" + visits)
+    with desk.analysis(name):
+        first = desk.submit(url, stars, label="north stars").wait(progress=False)
+        desk.submit(url, visits, uploads={"mine": first}, label="their visits").wait(progress=False)
+    print(f"   analysis {name!r}: {len(desk.analysis_jobs(name))} steps")
+
+    _say("8. The archive publishes release 2: plan the same analysis on it",
+         "renames: " + ", ".join(f"{k} -> {v}" for k, v in RELEASE.items()))
+    plan = desk.rerun(name, rename=RELEASE, into=name + " on r2")
+    for step in plan.steps:
+        print(f"   step {step['step']} new ADQL:\n      "
+              + step["new_adql"].replace("\n", "\n      "))
+    plan.wait()
+    print(f"   {plan!r}")
+
+    _say("9. What the new release changed")
+    comparisons = plan.compare()
+    for entry in comparisons:
+        c = entry.comparison
+        if c is None:
+            print(f"   step {entry.step}: {entry.error}")
+            continue
+        moved = ", ".join(f"{k} {v}" for k, v in c.changed.items() if v) or "none"
+        print(f"   step {entry.step}: {c.rows_old} -> {c.rows_new} rows; added {c.added}, "
+              f"removed {c.removed}, matched {c.matched}; changed values: {moved}")
+    html, _ = comparisons.report(Path(state) / "release-report.html")
+    print(f"   report: {html} (and {html.with_suffix('.json').name})")

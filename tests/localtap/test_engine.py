@@ -154,7 +154,8 @@ def test_tap_schema_keys_link_epochs_to_sources(engine):
     rows = all_rows(engine, "SELECT k.from_table, k.target_table, c.from_column, c.target_column "
                             "FROM TAP_SCHEMA.keys AS k JOIN TAP_SCHEMA.key_columns AS c "
                             "ON k.key_id = c.key_id")
-    assert rows == [("orrery.visits", "orrery.sources", "orrery_id", "orrery_id")]
+    assert rows == [("orrery.visits", "orrery.sources", "orrery_id", "orrery_id"),
+                    ("orrery_r2.visits", "orrery_r2.sources", "orrery_id", "orrery_id")]
 
 
 def test_tables_for_vosi(engine):
