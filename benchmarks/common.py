@@ -41,6 +41,8 @@ CASE_NAMES = {
     "case5": "index-scale",
     "case6": "keys",
     "case7": "shaping",
+    "case8": "compare",
+    "case9": "rerun",
 }
 
 # A comparison word and its opposite: a ratio below 1 is read the other way round, so that
