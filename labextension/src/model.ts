@@ -38,6 +38,7 @@ export interface IJobRecord {
   host?: string | null;
   layer?: string | null;
   warnings?: string[] | null;
+  analysis?: string | null; // the first analysis the job joined (see src/analyses.ts)
   [other: string]: unknown;
 }
 
