@@ -162,8 +162,13 @@ class Plan:
             if any(st in (FAILED, BLOCKED) for st in states.values()) \
                     or any(st != DONE for st in states.values()):
                 continue
-            uploads = {name: self.desk.store.path(sha).read_bytes()
-                       for name, sha in s["uploads"].items()}
+            try:
+                uploads = {name: self.desk.store.path(sha).read_bytes()
+                           for name, sha in s["uploads"].items()}
+            except OSError as exc:
+                s["error"] = f"an upload of the old step is no longer in the cache: {exc}"
+                changed = True
+                continue
             for name, dep in deps.items():
                 uploads[name] = self.desk.job(dep["new_job"])
             try:
