@@ -79,7 +79,8 @@ def run(ctx: Context) -> CaseResult:
         Row("case7", f"compare by key, {size}", cmp_s, "s", "pyarrow reads both files", read_s,
             ratio, "the read rate", ">= 0.5x the read rate", ratio >= 0.5),
         Row("case7", f"compare peak memory growth, {size}", growth, "MB",
-            "pyarrow reading both files", read_growth, growth / read_growth if read_growth else None,
+            "pyarrow reading both files", read_growth,
+            growth / read_growth if read_growth else None,
             "the read's growth", "< 500 MB", growth < 500),
     ]
     details = {"rows": rows, "compare": compares, "read": reads,

@@ -317,7 +317,8 @@ def make_plan(desk, name: str, renames: dict[str, str], service: str | None,
 
 def _default_into(desk, name: str) -> str:
     base = f"{name}@{_dt.date.today().isoformat()}"
-    taken = {a["name"] for a in desk.index.analyses()} | {p["into_name"] for p in desk.index.plans()}
+    taken = ({a["name"] for a in desk.index.analyses()}
+             | {p["into_name"] for p in desk.index.plans()})
     candidate, n = base, 1
     while candidate in taken:
         n += 1

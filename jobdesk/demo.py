@@ -145,7 +145,8 @@ def _rerun_story(desk, url: str, state: str) -> None:
     visits = ("SELECT v.orrery_id, count(*) AS n_visits FROM orrery.visits AS v\n"
               "JOIN TAP_UPLOAD.mine AS m ON m.orrery_id = v.orrery_id\n"
               "GROUP BY v.orrery_id ORDER BY v.orrery_id")
-    _say("7. An analysis: two steps, the second uploads the first's result", stars + "\n\n" + visits)
+    _say("7. An analysis: two steps, the second uploads the first's result",
+         stars + "\n\n" + visits)
     with desk.analysis(name):
         first = desk.submit(url, stars, label="north stars").wait(progress=False)
         desk.submit(url, visits, uploads={"mine": first}, label="their visits").wait(progress=False)

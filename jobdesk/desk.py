@@ -425,7 +425,8 @@ class Desk:
         """The analysis's jobs in step order (a forgotten job is left out)."""
         steps = self.index.steps(name)
         if not steps:
-            raise analyses.AnalysisNotFound(f"no analysis named {name!r} on this desk ({self.root})")
+            raise analyses.AnalysisNotFound(
+                f"no analysis named {name!r} on this desk ({self.root})")
         return [Job(self, s["job_id"]) for s in steps if self.index.get(s["job_id"])]
 
     def rerun(self, name: str, *, rename: dict[str, str] | None = None, service=None,

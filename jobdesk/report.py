@@ -21,8 +21,8 @@ from jobdesk.compare import Comparison
 STYLE = """
 body{font:14px/1.45 system-ui,sans-serif;margin:2em auto;max-width:72em;color:#1d2430}
 h1{font-size:1.5em}h2{font-size:1.2em;margin-top:2em;border-bottom:1px solid #ccd}
-table{border-collapse:collapse;margin:.5em 0}td,th{padding:.2em .7em;border-bottom:1px solid #e4e6ee;
-text-align:right}th{background:#f2f4f8}td.l,th.l{text-align:left}
+table{border-collapse:collapse;margin:.5em 0}
+td,th{padding:.2em .7em;border-bottom:1px solid #e4e6ee;text-align:right}th{background:#f2f4f8}td.l,th.l{text-align:left}
 .figs{display:flex;flex-wrap:wrap;gap:1em}figure{margin:0}figcaption{font-size:.85em;color:#556}
 pre{background:#f6f7fa;padding:.6em;overflow:auto;font-size:.85em}
 .num{font-variant-numeric:tabular-nums}.warn{color:#a33}
@@ -87,7 +87,8 @@ def histogram_svg(name: str, hist: dict, width: int = 300, height: int = 170) ->
     bar = w / len(counts)
     parts = [f'<svg xmlns="http://www.w3.org/2000/svg" width="{width}" height="{height}" '
              f'viewBox="0 0 {width} {height}" role="img" aria-label="differences of {_e(name)}">',
-             f'<line x1="{pad_l}" y1="{pad_t + h}" x2="{pad_l + w}" y2="{pad_t + h}" stroke="#99a"/>']
+             f'<line x1="{pad_l}" y1="{pad_t + h}" x2="{pad_l + w}" y2="{pad_t + h}" '
+             'stroke="#99a"/>']
     for i, c in enumerate(counts):
         bh = h * c / top
         parts.append(f'<rect x="{pad_l + i * bar:.1f}" y="{pad_t + h - bh:.1f}" '
@@ -98,7 +99,8 @@ def histogram_svg(name: str, hist: dict, width: int = 300, height: int = 170) ->
                  f'{edges[-1]:.3g}</text>'
                  f'<text x="{pad_l + w / 2}" y="{height - 2}" font-size="10" text-anchor="middle">'
                  f'new - old</text>'
-                 f'<text x="{pad_l - 4}" y="{pad_t + 8}" font-size="10" text-anchor="end">{top}</text>'
+                 f'<text x="{pad_l - 4}" y="{pad_t + 8}" font-size="10" '
+                 f'text-anchor="end">{top}</text>'
                  "</svg>")
     return "".join(parts)
 

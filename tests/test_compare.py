@@ -87,7 +87,8 @@ def _write(tmp_path, old: pa.Table, new: pa.Table):
     return po, pn
 
 
-@settings(max_examples=150, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(max_examples=150, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(pair=tables(), tolerance=st.sampled_from([0.0, 0.0, 0.6]))
 def test_counts_equal_pandas_outer_merge(tmp_path, pair, tolerance):
     old, new = pair
@@ -106,7 +107,8 @@ def test_counts_equal_pandas_outer_merge(tmp_path, pair, tolerance):
     assert [r["name"] for r in got.columns_retyped] == (["t"] if t_changed else [])
 
 
-@settings(max_examples=80, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
+@settings(max_examples=80, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(pair=tables(unique=False))
 def test_repeated_keys_are_an_error_naming_how_many(tmp_path, pair):
     old, new = pair

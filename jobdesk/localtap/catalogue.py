@@ -256,7 +256,8 @@ def release_two(src: dict[str, np.ndarray], visits: dict[str, np.ndarray], seed:
     out["source_class"] = out.pop("class_label")
     kept_visits = np.isin(visits["orrery_id"], out["orrery_id"])
     v2 = {k: v[kept_visits].copy() for k, v in visits.items()}
-    v2["mag"] = np.round(v2["mag"] + rng.normal(0.0, 1.0, len(v2["mag"])) * v2["mag_sigma"] * 0.5, 4)
+    noise = rng.normal(0.0, 1.0, len(v2["mag"])) * v2["mag_sigma"] * 0.5
+    v2["mag"] = np.round(v2["mag"] + noise, 4)
     ids, counts = np.unique(v2["orrery_id"], return_counts=True)
     out["visit_count"] = np.zeros(len(out["orrery_id"]), dtype=np.int64)
     if len(ids):

@@ -329,7 +329,8 @@ class CompareHandler(DeskHandler):
             page = await self.call(_compare_report, old, new, key)
             self.set_header("Content-Type", "text/html; charset=utf-8")
             self.set_header("Cache-Control", "no-store")
-            self.set_header("Content-Security-Policy", "default-src 'none'; style-src 'unsafe-inline'")
+            self.set_header("Content-Security-Policy",
+                            "default-src 'none'; style-src 'unsafe-inline'")
             # APIHandler.finish would label the page application/json
             tornado.web.RequestHandler.finish(self, page)
             return

@@ -40,7 +40,8 @@ def test_analyses_steps_and_plans(setup):
     names = [a["name"] for a in get(jp, "analyses").json()["analyses"]]
     assert set(names) == {"north", plan.into}
     steps = get(jp, "analyses/steps", params={"name": "north"}).json()
-    assert [j["id"] for j in steps["jobs"]] == [plan.steps[0]["old_job"]] and steps["plans"] == [plan.id]
+    assert [j["id"] for j in steps["jobs"]] == [plan.steps[0]["old_job"]]
+    assert steps["plans"] == [plan.id]
     assert get(jp, "analyses/steps", params={"name": "nothing"}).status_code == 404
     shown = get(jp, f"plans/{plan.id}").json()
     assert [s["state"] for s in shown["steps"]] == ["done"] and shown["finished"] is True
