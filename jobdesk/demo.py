@@ -123,7 +123,7 @@ def run(root=None, rows: int = 20000) -> int:
         tap.stop()
     tap = localtap.spawn(state=state, rows=rows)   # up again (the same catalogue, re-used)
     try:
-        _rerun_story(desk, tap.url, state)
+        _rerun_story(desk, tap.url)
     finally:
         tap.stop()
     return 0
@@ -133,7 +133,7 @@ RELEASE = {"orrery.sources": "orrery_r2.sources", "orrery.visits": "orrery_r2.vi
            "class_label": "source_class"}
 
 
-def _rerun_story(desk, url: str, state: str) -> None:
+def _rerun_story(desk, url: str) -> None:
     """Steps 7-9: an analysis, its re-run on the second release, and what changed."""
     import datetime as _dt
     from pathlib import Path
@@ -171,5 +171,5 @@ def _rerun_story(desk, url: str, state: str) -> None:
         moved = ", ".join(f"{k} {v}" for k, v in c.changed.items() if v) or "none"
         print(f"   step {entry.step}: {c.rows_old} -> {c.rows_new} rows; added {c.added}, "
               f"removed {c.removed}, matched {c.matched}; changed values: {moved}")
-    html, _ = comparisons.report(Path(state) / "release-report.html")
+    html, _ = comparisons.report(Path(desk.root) / "reports" / "release-report.html")
     print(f"   report: {html} (and {html.with_suffix('.json').name})")
