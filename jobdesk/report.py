@@ -66,9 +66,11 @@ def sky_svg(sky: dict, width: int = 560, height: int = 300) -> str:
                  f'{_e(sky["ra"])} [deg]</text>')
     parts.append(f'<text x="10" y="{height / 2}" font-size="11" text-anchor="middle" '
                  f'transform="rotate(-90 10 {height / 2})">{_e(sky["dec"])} [deg]</text>')
+    shown = sum(len((sky.get(k) or ([], []))[0]) for k in ("added", "removed"))
+    radius = 3.0 if shown < 300 else 1.6          # few points: big enough to see
     for kind, colour in (("removed", REMOVED), ("added", ADDED)):
         ras, decs = sky.get(kind) or ([], [])
-        dots = "".join(f'<circle cx="{x(r):.1f}" cy="{y(d):.1f}" r="1.6"/>'
+        dots = "".join(f'<circle cx="{x(r):.1f}" cy="{y(d):.1f}" r="{radius}"/>'
                        for r, d in zip(ras, decs) if r is not None and d is not None)
         parts.append(f'<g fill="{colour}" fill-opacity="0.75"><title>{kind}</title>{dots}</g>')
     parts.append(f'<g font-size="11"><circle cx="{pad + 8}" cy="{pad - 14}" r="4" fill="{ADDED}"/>'
