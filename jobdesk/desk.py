@@ -107,6 +107,8 @@ class Desk:
         """
         name = analysis if analysis is not None else analyses.current()
         sources = analyses.upload_sources(uploads) if name is not None else {}
+        rows_given = {k: (None if isinstance(v, Job) else len(v))
+                      for k, v in (uploads or {}).items() if k in sources and hasattr(v, "__len__")}
         if uploads:
             uploads = {k: (v.table() if isinstance(v, Job) else v) for k, v in uploads.items()}
         job = self._submit_one(service, adql, maxrec=maxrec, uploads=uploads, label=label,
@@ -117,7 +119,8 @@ class Desk:
             depends = {}
             for upload, key in sources.items():
                 made = self.index.find(key, reuse=lambda r: True)
-                if made is not None:
+                # a table cut down from a result is an upload of its own, not that result
+                if made is not None and rows_given.get(upload) in (None, made.get("rows")):
                     depends[upload] = made["id"]
             self.index.add_step(name, job.id, depends)
         return job

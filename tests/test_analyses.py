@@ -66,6 +66,10 @@ def test_analysis_records_order_and_upload_dependency(tap, desk):
     assert steps[2]["depends"] == {"mine": stars.id}              # found from the table's key
     assert desk.job(stars.id).record["analysis"] == "stream-search"
     assert [j.id for j in desk.analysis_jobs("stream-search")][0] == stars.id
+    # a table cut down from a result is its own upload, not a dependency on that result
+    few = stars.table()[:5]
+    cut = desk.submit(tap.url, VISITS, uploads={"mine": few}, analysis="cut")
+    assert desk.index.steps("cut")[0]["depends"] == {} and cut.id != steps[2]["job_id"]
 
 
 def test_rerun_on_the_second_release_and_compare(tap, desk, tmp_path):
