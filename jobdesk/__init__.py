@@ -9,6 +9,7 @@
 from jobdesk.desk import Desk, Job
 from jobdesk.groups import Group
 from jobdesk.errors import (
+    AnalysisError, AnalysisNotFound, CompareKeyInvalid, RenameInvalid,
     BadServiceURL, CacheCorrupt, ConfigError, ExportRefused, ExportTargetExists, ExportWarning,
     GroupCacheWarning, IndexBusy, JobAborted, JobdeskError, JobFailed, JobLost,
     NotRepeatableWarning, PublishRefused, QueryRejected, ResultTruncated, ResultTruncatedWarning,
@@ -21,6 +22,7 @@ from jobdesk.errors import (
 __version__ = "0.1.0"
 
 __all__ = [
+    "AnalysisError", "AnalysisNotFound", "CompareKeyInvalid", "RenameInvalid",
     "BadServiceURL", "CacheCorrupt", "ConfigError", "Desk", "ExportRefused", "ExportTargetExists",
     "ExportWarning", "Group", "GroupCacheWarning", "IndexBusy", "Job", "JobAborted", "JobdeskError",
     "JobFailed", "JobLost", "NotRepeatableWarning", "PublishRefused", "QueryRejected",
