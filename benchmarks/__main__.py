@@ -27,8 +27,8 @@ CASES = {
     "case5": ("case5_index_scale", "listing and cache-hit submit with 100,000 jobs"),
     "case6": ("case6_keys", "cache keys per second"),
     "case7": ("case7_shaping", "metadata memory, find, tables page, check"),
-    "case8": ("case7_compare", "comparing two large results by key vs reading them"),
-    "case9": ("case8_rerun", "re-running an analysis of cache hits"),
+    "case8": ("case8_compare", "comparing two large results by key vs reading them"),
+    "case9": ("case9_rerun", "re-running an analysis of cache hits"),
 }
 
 

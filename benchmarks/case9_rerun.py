@@ -1,4 +1,4 @@
-"""Case 8: re-running a 5-step analysis whose steps are all cache hits, against running it.
+"""Case 9: re-running a 5-step analysis whose steps are all cache hits, against running it.
 
 A fresh ``Desk`` on the same root plans the re-run (reading the service's VOSI tables to check
 the names, rewriting every step), submits every step (each one a cache hit) and waits; the
@@ -30,7 +30,7 @@ def run(ctx: Context) -> CaseResult:
 
     tap = spawn(state=ctx.cache / "tap-rerun-20000", rows=20_000)
     ctx.callback(tap.stop)
-    root = ctx.work / "case8-desk"
+    root = ctx.work / "case9-desk"
 
     def first_run():
         desk = Desk(root)
@@ -49,7 +49,7 @@ def run(ctx: Context) -> CaseResult:
         times.append(seconds)
     assert tap.stats()["jobs_created"] == created, "a cache-hit re-run created server jobs"
     hit = median(times)
-    rows = [Row("case8", "re-run of a 5-step analysis, all cache hits", hit, "s",
+    rows = [Row("case9", "re-run of a 5-step analysis, all cache hits", hit, "s",
                 "first run (executes on the service)", first_s, first_s / hit, "faster",
                 "< 1 s", hit < 1.0)]
     return CaseResult(rows, {"rerun_s": times, "first_s": first_s})
