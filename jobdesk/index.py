@@ -120,14 +120,20 @@ def _add_analyses_and_plans(db: sqlite_utils.Database) -> None:
     # Analyses (named chains of jobs in the order they were submitted; one job may belong to
     # several) and release re-run plans, so a re-run survives kernel restarts like its jobs.
     # ``analysis`` on a job is the first analysis it joined, for listings that group by it.
-    db.execute("ALTER TABLE jobs ADD COLUMN analysis TEXT")
-    db.execute(db.create_table_sql("analysis_steps", {
-        "analysis": str, "step": int, "job_id": str, "depends": str, "added": float},
-        pk=("analysis", "step")))
-    db.execute("CREATE UNIQUE INDEX idx_analysis_steps_job ON analysis_steps (analysis, job_id)")
-    db.execute(db.create_table_sql("plans", {
-        "id": str, "analysis": str, "into_name": str, "args": str, "created": float,
-        "updated": float, "state": str}, pk="id"))
+    # Written to run safely on a file that already has any of these (idempotent).
+    if "analysis" not in {row[1] for row in db.execute("PRAGMA table_info(jobs)").fetchall()}:
+        db.execute("ALTER TABLE jobs ADD COLUMN analysis TEXT")
+    have = {row[0] for row in db.execute("SELECT name FROM sqlite_master").fetchall()}
+    if "analysis_steps" not in have:
+        db.execute(db.create_table_sql("analysis_steps", {
+            "analysis": str, "step": int, "job_id": str, "depends": str, "added": float},
+            pk=("analysis", "step")))
+        db.execute("CREATE UNIQUE INDEX idx_analysis_steps_job ON analysis_steps "
+                   "(analysis, job_id)")
+    if "plans" not in have:
+        db.execute(db.create_table_sql("plans", {
+            "id": str, "analysis": str, "into_name": str, "args": str, "created": float,
+            "updated": float, "state": str}, pk="id"))
 
 
 SCHEMA_VERSION = len(MIGRATIONS)

@@ -168,3 +168,25 @@ def test_cli_analyses_rerun_compare(tap, desk, tmp_path, capsys):
     assert summary["key"] == "orrery_id" and out.exists() and out.with_suffix(".json").exists()
     assert cli([*root, "rerun", "stream-search", "--rename", "nope=x"]) == 2
     assert "no step of 'stream-search' uses that name" in capsys.readouterr().err
+
+
+def test_index_from_before_analyses_is_migrated_and_keeps_its_jobs(tmp_path):
+    import sqlite3
+
+    from jobdesk.index import SCHEMA_VERSION, Index
+    path = tmp_path / "index.sqlite"
+    index = Index(path)
+    index.insert({"id": "00112233aabbccdd", "key": "k" * 64, "service": "http://x.invalid/tap",
+                  "adql": "SELECT 1", "phase": "COMPLETED", "created": 1.0})
+    index.close()
+    conn = sqlite3.connect(path)
+    conn.execute("DROP TABLE analysis_steps")
+    conn.execute("DROP TABLE plans")
+    conn.execute("ALTER TABLE jobs DROP COLUMN analysis")
+    conn.execute(f"PRAGMA user_version = {SCHEMA_VERSION - 1}")   # the schema before analyses
+    conn.commit()
+    conn.close()
+    index = Index(path)
+    assert index.get("00112233aabbccdd")["analysis"] is None
+    assert index.add_step("a", "00112233aabbccdd") == 1 and index.analyses()[0]["steps"] == 1
+    assert index.get("00112233aabbccdd")["analysis"] == "a"
