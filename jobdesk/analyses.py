@@ -291,7 +291,7 @@ def make_plan(desk, name: str, renames: dict[str, str], service: str | None,
                 depends[upload] = by_job[job_id]
         uploads = {n: sha for n, sha in (record.get("uploads") or {}).items() if n not in depends}
         if target not in metadata:
-            metadata[target] = tableset.read(target, desk._sessions.get(target, desk.session))
+            metadata[target] = tableset.published(desk, target)
         meta = metadata[target]
         if meta is not None:
             problems += _check_names(s["step"], new_adql, meta, done, renames, target)
