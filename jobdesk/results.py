@@ -13,6 +13,7 @@ import base64
 import binascii
 import json
 import os
+import re
 import struct
 import xml.parsers.expat
 from dataclasses import asdict, dataclass, field
@@ -23,6 +24,7 @@ import defusedxml
 import numpy as np
 import pyarrow as pa
 import pyarrow.compute as pc
+import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 from defusedxml.ElementTree import DefusedXMLParser
 
@@ -31,7 +33,7 @@ from jobdesk.errors import ServiceResponseInvalid
 __all__ = ["ResultSummary", "to_parquet", "scan", "load_table", "load_frame", "error_message",
            "read_metadata"]
 
-READ_CHUNK = 1 << 20          # bytes fed to the XML parser at a time
+READ_CHUNK = 4 << 20          # bytes read at a time (fed to the XML parser, or the bulk path)
 BATCH_CELLS = 100_000         # cells per Arrow batch: bounds memory whatever the column count
 BATCH_ROWS = 50_000
 ROW_GROUP_ROWS = 1_000_000    # larger row groups read back faster ...
@@ -138,9 +140,9 @@ class _Field:
 # --- values: text cells (TABLEDATA) -------------------------------------------------------------
 
 
-def _numbers_from_text(cells: list[str], fld: _Field) -> pa.Array:
+def _numbers_from_text(cells: list[str] | pa.Array, fld: _Field) -> pa.Array:
     """Parse numeric text cells; empty cells, the VALUES null and NaN become nulls."""
-    text = pc.utf8_trim_whitespace(pa.array(cells, pa.string()))
+    text = pc.utf8_trim_whitespace(_as_arrow(cells))
     text = pc.if_else(pc.equal(text, ""), pa.scalar(None, pa.string()), text)
     try:
         arr = pc.cast(text, fld.arrow)
@@ -180,15 +182,23 @@ def _bools_from_text(cells: list[str]) -> pa.Array:
     return pa.array([_BOOL_TEXT.get(c.strip().lower()) for c in cells], pa.bool_())
 
 
-def _column_from_text(cells: list[str], fld: _Field) -> pa.Array:
+def _as_arrow(cells: list[str] | pa.Array) -> pa.Array:
+    return cells if isinstance(cells, pa.Array) else pa.array(cells, pa.string())
+
+
+def _column_from_text(cells: list[str] | pa.Array, fld: _Field) -> pa.Array:
+    """One column from its text cells: a list of str (the XML path) or an Arrow string array
+    (the bulk path); both go through the same steps, so both give the same values."""
     if fld.is_string:
         # An empty TD is an empty string, not a null, and surrounding whitespace is dropped:
         # both as the reference reader (astropy) does, so the two agree value for value.
-        return pc.utf8_trim_whitespace(pa.array(cells, pa.string()))
+        return pc.utf8_trim_whitespace(_as_arrow(cells))
     if not (fld.is_array or fld.complex):
         if fld.arrow == pa.bool_():
-            return _bools_from_text(cells)
+            return _bools_from_text(cells if isinstance(cells, list) else cells.to_pylist())
         return _numbers_from_text(cells, fld)
+    if isinstance(cells, pa.Array):
+        cells = cells.to_pylist()
     # Arrays: whitespace separated values, the first dimension varying fastest (VOTable 1.4 §2.2).
     if fld.arrow == pa.bool_():
         parts = [_bool_tokens(c) for c in cells]
@@ -512,6 +522,8 @@ class _Reader:
         self.raw = bytearray()
         self.td = self.tr = self.tabledata = ""
         self.ended = False
+        self.where = lambda: -1               # expat's byte index of the current event
+        self.tabledata_at = self.row_end_at = -1
 
     # XML target protocol ------------------------------------------------------------------------
 
@@ -561,6 +573,7 @@ class _Reader:
                 self.batch_rows = max(1, min(BATCH_ROWS, BATCH_CELLS // max(1, len(self.fields))))
             elif name == "TABLEDATA":
                 self.mode = "td"
+                self.tabledata_at = self.where()
                 prefix = tag[: len(tag) - len(name)]
                 self.tabledata, self.tr, self.td = tag, prefix + "TR", prefix + "TD"
             elif name in ("BINARY", "BINARY2"):
@@ -585,6 +598,7 @@ class _Reader:
                 return
             if tag == self.tr:
                 self._end_row()
+                self.row_end_at = self.where()
                 return
             if tag != self.tabledata:
                 return
@@ -662,6 +676,13 @@ class _Reader:
             self.sink.write(cols, rows)
         self.cells = []
 
+    def add_rows(self, cols: list[pa.Array], rows: int) -> None:
+        """Rows decoded by the bulk path, after any the XML path gathered before them."""
+        self._flush_text()
+        self.rows += rows
+        if self.sink.wants_values:
+            self.sink.write(cols, rows)
+
     def drain_stream(self, final: bool = False) -> None:
         """Decode the base64 text gathered so far and hand complete rows on (§5.1)."""
         if self.mode != "stream":
@@ -711,6 +732,8 @@ def _read(source: IO[bytes], sink) -> tuple[ResultSummary, list[_Field]]:
         expat.StartElementHandler = reader.expat_start
         expat.EndElementHandler = reader.end
         expat.CharacterDataHandler = reader.text.append
+        reader.where = lambda: expat.CurrentByteIndex
+    feed = parser.feed
     try:
         seen = 0
         while True:
@@ -719,11 +742,15 @@ def _read(source: IO[bytes], sink) -> tuple[ResultSummary, list[_Field]]:
                 break
             if seen == 0:
                 _refuse_non_xml(chunk)
+                if isinstance(expat, xml.parsers.expat.XMLParserType) and _declares_utf8(chunk):
+                    feed = _TableDataSplitter(reader, parser.feed).push
             seen += len(chunk)
-            parser.feed(chunk)
+            feed(chunk)
             reader.drain_stream()
         if seen == 0:
             raise ServiceResponseInvalid("the result document is empty (0 bytes)")
+        if feed != parser.feed:
+            feed(b"", final=True)
         parser.close()
     except ServiceResponseInvalid:
         raise
@@ -746,6 +773,169 @@ def _refuse_non_xml(head: bytes) -> None:
     if start[:1] != b"<":
         preview = start[:60].decode("utf-8", "replace")
         raise ServiceResponseInvalid(f"expected a VOTable document, found text: {preview!r}")
+
+
+# --- TABLEDATA in bulk -------------------------------------------------------------------------
+#
+# Most of the time of the XML path goes into one Python call per cell (expat's start, end and
+# text events). Rows written the plain way -- <TR><TD>text</TD>...</TR>, no entities, comments,
+# CDATA, processing instructions or attributes -- are turned into delimited text with a few
+# whole-buffer byte replacements and parsed by Arrow's CSV reader, then go through the same
+# per-column steps as the XML path. Anything else in a piece of rows sends that piece to expat,
+# which stays in step: the bulk path only ever skips whole rows, and it resumes only once
+# expat's own events prove it stands between two rows.
+
+_ROWS_START = re.compile(rb"<(?:([A-Za-z_][\w.-]*):)?TABLEDATA\s*>")
+_BETWEEN_TAGS = re.compile(rb">\s+<")
+# XML 1.0 §2.2: characters a document cannot hold; expat refuses them, so must the bulk path.
+# Our delimiter \x1f is one of them, so no cell can hold it.
+_CSV_PARSE = pacsv.ParseOptions(delimiter="\x1f", quote_char=False, double_quote=False,
+                                escape_char=False, newlines_in_values=False,
+                                ignore_empty_lines=False)
+_NOT_XML = bytes(range(0, 9)) + b"\x0b\x0c" + bytes(range(0x0e, 0x20))
+# Entities and character references, the CDATA end (refused in text, XML 1.0 §2.4) and line
+# ends expat would normalise (§2.11). Comments, CDATA sections and processing instructions
+# need no test: they start with "<", which no replacement below takes, so they are left over.
+_MARKUP = (b"&", b"]]>", b"\r")
+_CELL, _ROW = b"\x1f", b"\n"
+_DECLARED = re.compile(rb"""^\s*<\?xml[^>]*?encoding\s*=\s*["']([A-Za-z0-9._-]+)["']""")
+
+
+def _declares_utf8(head: bytes) -> bool:
+    """The bulk path reads bytes as UTF-8: only for documents that are UTF-8 (XML 1.0 §4.3.3:
+    no byte order mark and no encoding declaration also means UTF-8)."""
+    if head[:2] in (b"\xff\xfe", b"\xfe\xff"):
+        return False
+    found = _DECLARED.match(head.removeprefix(b"\xef\xbb\xbf")[:400])
+    return found is None or found.group(1).lower() in (b"utf-8", b"utf8", b"us-ascii", b"ascii")
+
+
+class _NotBulk(Exception):
+    """This piece of rows needs the XML parser."""
+
+
+class _TableDataSplitter:
+    """Hands a document to expat, except the rows of the kept TABLEDATA it can read in bulk."""
+
+    def __init__(self, reader: "_Reader", feed):
+        self.reader = reader
+        self._expat_feed = feed
+        self.fed = 0                  # bytes given to expat (its byte index counts only these)
+        self.buf = b""
+        self.in_rows = False
+        self.clean = True             # expat stands between two rows (not inside a comment...)
+
+    def _feed(self, data: bytes) -> None:
+        if data:
+            self._expat_feed(data)
+            self.fed += len(data)
+
+    def push(self, chunk: bytes, final: bool = False) -> None:
+        buf = self.buf + chunk if self.buf else chunk
+        while buf:
+            if not self.in_rows:
+                found = _ROWS_START.search(buf) if b"TABLEDATA" in buf else None
+                if found is None:
+                    keep = 0 if final else min(len(buf), 256)   # a tag cut by the chunk edge
+                    self._feed(buf[: len(buf) - keep])
+                    buf = buf[len(buf) - keep:]
+                    break
+                start = self.fed + found.start()
+                self._feed(buf[: found.end()])
+                buf = buf[found.end():]
+                reader = self.reader
+                if reader.mode == "td" and reader.tabledata_at == start:
+                    self._enter(found.group(1) or b"")
+                continue
+            end = buf.find(self.close)
+            if end >= 0:
+                limit = end
+            else:
+                last = buf.rfind(self.tr_close)
+                if last < 0 or final:
+                    if final:           # no </TABLEDATA>: expat says how the document is cut
+                        self._feed(buf)
+                        buf = b""
+                    break
+                limit = last + len(self.tr_close)
+            self._rows(buf[:limit])
+            buf = buf[limit:]
+            if end >= 0:
+                self.in_rows = False
+        self.buf = buf
+
+    def _enter(self, prefix: bytes) -> None:
+        p = prefix + b":" if prefix else b""
+        tr, td = b"<" + p + b"TR>", b"<" + p + b"TD>"
+        tr_end, td_end = b"</" + p + b"TR>", b"</" + p + b"TD>"
+        self.close = b"</" + p + b"TABLEDATA"
+        self.tr_close = tr_end
+        self.first, self.last = tr + td, td_end + tr_end
+        self.empty, self.empty_as = b"<" + p + b"TD/>", td + td_end
+        self.cell_sep = td_end + td
+        self.row_seps = (td_end + tr_end + b"\n" + tr + td, td_end + tr_end + tr + td)
+        self.in_rows, self.clean = True, True
+        self.names = [f"c{i}" for i in range(len(self.reader.fields))]
+
+    def _rows(self, piece: bytes) -> None:
+        if self.clean:
+            body = piece.strip()
+            if not body:
+                return
+            try:
+                cols, rows = self._convert(body)
+            except _NotBulk:
+                pass
+            else:
+                self.reader.add_rows(cols, rows)
+                return
+        before = self.fed
+        self._feed(piece)
+        # Back in step only if the piece's last </TR> was a real end tag, seen by the reader.
+        last = piece.rfind(self.tr_close)
+        self.clean = (last >= 0 and not piece[last + len(self.tr_close):].strip()
+                      and self.reader.row_end_at == before + last)
+
+    def _convert(self, body: bytes) -> tuple[list[pa.Array], int]:
+        fields = self.reader.fields
+        if not fields or any(m in body for m in _MARKUP) or \
+                len(body.translate(None, _NOT_XML)) != len(body):
+            raise _NotBulk
+        text = self._delimited(body) or self._delimited(_BETWEEN_TAGS.sub(b"><", body))
+        if text is None:
+            raise _NotBulk
+        rows = body.count(self.tr_close)
+        try:
+            table = pacsv.read_csv(pa.py_buffer(text), read_options=pacsv.ReadOptions(
+                column_names=self.names, block_size=max(1 << 20, len(text) // 2 + 1)),
+                parse_options=_CSV_PARSE, convert_options=pacsv.ConvertOptions(
+                    column_types={n: pa.string() for n in self.names},
+                    strings_can_be_null=False, quoted_strings_can_be_null=False,
+                    null_values=[], check_utf8=True))
+        except (pa.ArrowInvalid, pa.ArrowNotImplementedError):
+            raise _NotBulk from None
+        if table.num_rows != rows:          # a line end inside a cell: not one row per line
+            raise _NotBulk
+        if not self.reader.sink.wants_values:
+            return [], rows
+        try:
+            cols = [_column_from_text(table.column(i).combine_chunks(), f)
+                    for i, f in enumerate(fields)]
+        except Exception:  # noqa: BLE001 - the XML path raises the exact error, or reads it
+            raise _NotBulk from None
+        return cols, rows
+
+    def _delimited(self, body: bytes) -> bytes | None:
+        if self.empty in body:
+            body = body.replace(self.empty, self.empty_as)
+        if not (body.startswith(self.first) and body.endswith(self.last)):
+            return None
+        text = body[len(self.first): len(body) - len(self.last)].replace(self.cell_sep, _CELL)
+        for sep in self.row_seps:
+            text = text.replace(sep, _ROW)
+        # Every tag was one of the replaced sequences, so nothing of markup is left, or the
+        # rows are not plain: the whole piece is refused.
+        return None if b"<" in text else text
 
 
 # --- sinks -------------------------------------------------------------------------------------
