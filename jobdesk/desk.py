@@ -20,7 +20,7 @@ import platformdirs
 
 from jobdesk import checks as query_checks
 from jobdesk import estimate as cost
-from jobdesk import analyses, keys, metadata, phases, provenance, results
+from jobdesk import analyses, formats, keys, metadata, phases, provenance, results, voparquet
 from jobdesk import uploads as upload_tables
 from jobdesk.errors import (
     BadServiceURL, CacheCorrupt, GroupCacheWarning, JobAborted, JobdeskError, JobFailed, JobLost,
@@ -92,7 +92,7 @@ class Desk:
 
     def submit(self, service, adql: str, *, maxrec: int | None = None, uploads=None,
                label: str | None = None, refresh: bool = False, max_age=None,
-               fmt: str = "votable", publish: bool = True, check: bool = True,
+               fmt: str | None = None, publish: bool = True, check: bool = True,
                estimate: bool = False, analysis: str | None = None) -> "Job":
         """Run ``adql`` on ``service`` as an async job, or return the job that already did.
 
@@ -104,6 +104,8 @@ class Desk:
         ``analysis`` (or an enclosing ``desk.analysis(name)``) appends the job to that analysis;
         an upload that is a jobdesk result (a Job, or a table loaded from one) is recorded as a
         dependency on the job that made it.
+        ``fmt`` is a RESPONSEFORMAT to insist on; without it the fastest one the service offers
+        is used, and the cache key is the default format's.
         """
         name = analysis if analysis is not None else analyses.current()
         sources = analyses.upload_sources(uploads) if name is not None else {}
@@ -134,7 +136,8 @@ class Desk:
         prepared = upload_tables.prepare(uploads)
         scope = self._scope_for(sid)
         digests = {name: sha for name, (_, sha) in prepared.items()}
-        key = keys.query_key(sid, adql, maxrec=maxrec, fmt=fmt, uploads=digests, scope=scope)
+        key = keys.query_key(sid, adql, maxrec=maxrec, fmt=fmt or formats.DEFAULT,
+                             uploads=digests, scope=scope)
         oldest = None if max_age is None else time.time() - _seconds(max_age)
 
         def reuse(record: dict) -> bool:
@@ -155,7 +158,7 @@ class Desk:
             self._refuse_bad(sid, adql)
         measured = None
         if estimate:
-            measured = self.estimate(sid, adql, maxrec=maxrec, fmt=fmt)
+            measured = self.estimate(sid, adql, maxrec=maxrec, fmt=fmt or formats.DEFAULT)
             _show_estimate(measured)
         canonical = keys.canonical_adql(adql)
         _warn_not_repeatable(canonical.warnings)
@@ -591,9 +594,19 @@ class Desk:
                 self.index.update(job_id, intent=time.time())
                 sent = {name: self.store.path(sha).read_bytes()
                         for name, sha in (record.get("uploads") or {}).items()}
-                job_url = remote.create(record["adql"], maxrec=record.get("maxrec"),
-                                        fmt=record.get("fmt") or "votable", uploads=sent or None,
-                                        run_id=record["run_id"])
+                fmt = record.get("fmt") or record.get("result_fmt") or \
+                    formats.choose(self._capabilities(record["service"], formats=True))
+
+                def create(fmt: str) -> str:
+                    self.index.update(job_id, result_fmt=fmt)
+                    return remote.create(record["adql"], maxrec=record.get("maxrec"), fmt=fmt,
+                                         uploads=sent or None, run_id=record["run_id"])
+                try:
+                    job_url = create(fmt)
+                except JobdeskError as exc:
+                    if _transient(exc) or not self._may_fall_back(record, fmt, str(exc)):
+                        raise
+                    job_url = create(formats.DEFAULT)
                 self.index.update(job_id, job_url=job_url, phase=phases.SUBMITTED,
                                   submitted=time.time(), error=None,
                                   note="created on the service")
@@ -677,8 +690,11 @@ class Desk:
                 except JobdeskError:
                     detail = ""
                 message = detail or message or "the service reported ERROR without a message"
-                self.index.update(job_id, phase=phases.ERROR, error=message,
-                                  finished=time.time())
+                if not (not _looks_like_query_error(message)
+                        and self._may_fall_back(record, record.get("result_fmt"), message,
+                                                again=True)):
+                    self.index.update(job_id, phase=phases.ERROR, error=message,
+                                      finished=time.time())
             elif status.phase in (phases.ABORTED, phases.ARCHIVED):
                 self.index.update(job_id, phase=status.phase, finished=time.time(),
                                   error=status.error_summary or f"the job is {status.phase}")
@@ -695,14 +711,32 @@ class Desk:
         limit = self.limits.get(record["service"], DEFAULT_RUNNING_LIMIT)
         return self.index.count(phase=sorted(phases.RUNNING), service=record["service"]) < limit
 
-    def _capabilities(self, service: str) -> dict:
+    def _may_fall_back(self, record: dict, fmt: str | None, why: str, *,
+                       again: bool = False) -> bool:
+        """Once per job, when the service failed on a format jobdesk chose (not the user): note
+        it and go on with the default; ``again`` sends the job back to be created anew."""
+        if record.get("fmt") or not fmt or fmt == formats.DEFAULT:
+            return False
+        note = (f"the service failed with RESPONSEFORMAT={fmt} ({why[:200]}); "
+                f"retrying once with {formats.DEFAULT}")
+        if again:
+            # a RUNID of its own, so that orphan recovery never finds the failed job instead
+            self.index.update(record["id"], phase=phases.UNSENT, job_url=None, intent=None,
+                              run_id=f"{record['run_id']}-default", result_fmt=formats.DEFAULT,
+                              error=None, note=note)
+        else:
+            self.index.update(record["id"], result_fmt=formats.DEFAULT, note=note)
+        record["result_fmt"] = formats.DEFAULT
+        return True
+
+    def _capabilities(self, service: str, *, formats: bool = False) -> dict:
         """The service's VOSI capabilities, read once per service and kept in the index.
 
         Read through its own Remote so the request is not charged to the job; a failure is
         recorded in the answer and read again next time, never failing the job.
         """
         known = self.index.service_info(service)
-        if known is not None:
+        if known is not None and (not formats or "output_formats" in known):
             return known
         info = self._remote(service).capabilities()
         if "error" not in info:
@@ -723,10 +757,23 @@ class Desk:
                     lambda done: on_transfer(done, total[0])))
             meta = {"jobdesk_key": record["key"], "service": record["service"],
                     "adql": record["adql"], "job_url": record["job_url"]}
-            if (record.get("fmt") or "votable").lower().startswith(("csv", "text/csv")):
+            fmt = record.get("result_fmt") or record.get("fmt") or formats.DEFAULT
+            if formats.is_csv(fmt):
                 summary = results.csv_to_parquet(raw, table, metadata=meta)
+            elif formats.is_voparquet(fmt) and voparquet.is_parquet(raw):
+                summary = voparquet.to_cache(raw, table, metadata=meta)
+            elif voparquet.is_parquet(raw) or formats.is_voparquet(fmt):
+                # what was asked and what came differ (an error document is XML: read it)
+                summary = voparquet.to_cache(raw, table, metadata=meta) \
+                    if voparquet.is_parquet(raw) else results.to_parquet(raw, table, metadata=meta)
+                if summary.status != "ERROR":
+                    raise ServiceResponseInvalid(
+                        f"RESPONSEFORMAT={fmt} was asked for, the service sent "
+                        f"{got.content_type or 'something else'}")
             else:
-                summary = results.to_parquet(raw, table, metadata=meta)
+                summary = results.to_parquet(
+                    raw, table, metadata=meta,
+                    serialization=formats.declared_serialization(got.content_type))
             if summary.status == "ERROR":
                 self.index.update(job_id, phase=phases.ERROR, finished=time.time(),
                                   error=summary.message or "the result document says ERROR")
@@ -735,9 +782,12 @@ class Desk:
             table_sha, table_path = self.store.commit(table)
         except (ServiceResponseInvalid, BadServiceURL, JobFailed) as exc:
             # Not a result (an error document, broken or hostile bytes, an unusable link):
-            # fetching again would meet the same answer, so the job ends here, saying why.
-            self.index.update(job_id, phase=phases.ERROR, finished=time.time(),
-                              error=exc.message, note="the result was refused")
+            # fetching again would meet the same answer, so the job ends here, saying why
+            # (unless jobdesk chose the format: then once more with the default).
+            if not self._may_fall_back(record, record.get("result_fmt"), exc.message, again=True):
+                self.index.update(job_id, phase=phases.ERROR, finished=time.time(),
+                                  error=f"job {job_id}: the result was refused: {exc.message}",
+                                  note="the result was refused")
             return
         finally:
             raw.unlink(missing_ok=True)

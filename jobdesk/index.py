@@ -40,11 +40,12 @@ JOB_COLUMNS: dict[str, type] = {
     "result_bytes": int, "result_stat": str, "parquet_sha256": str, "parquet_stat": str,
     "error": str, "notebook": str, "user": str, "host": str, "requests": int, "owner": str,
     "lease_until": float, "layer": str, "warnings": str, "server": str, "estimate": str,
-    "analysis": str,
+    "analysis": str, "result_fmt": str,
 }
 
 MIGRATIONS: list[Callable[[sqlite_utils.Database], None]] = []
-_LATER_COLUMNS = ("estimate", "analysis")   # added to jobs by a later migration, not by the first
+# added to jobs by a later migration, not by the first
+_LATER_COLUMNS = ("estimate", "analysis", "result_fmt")
 
 
 def _migration(fn: Callable[[sqlite_utils.Database], None]) -> Callable:
@@ -134,6 +135,15 @@ def _add_analyses_and_plans(db: sqlite_utils.Database) -> None:
         db.execute(db.create_table_sql("plans", {
             "id": str, "analysis": str, "into_name": str, "args": str, "created": float,
             "updated": float, "state": str}, pk="id"))
+
+
+@_migration
+def _add_result_format(db: sqlite_utils.Database) -> None:
+    # The RESPONSEFORMAT a job was actually run with: negotiated from the service's capabilities
+    # when the user named none (``fmt`` NULL), so it can differ from what was asked.
+    # (idempotent, as the migration before it: a file may already have the column)
+    if "result_fmt" not in {row[1] for row in db.execute("PRAGMA table_info(jobs)").fetchall()}:
+        db.execute("ALTER TABLE jobs ADD COLUMN result_fmt TEXT")
 
 
 SCHEMA_VERSION = len(MIGRATIONS)

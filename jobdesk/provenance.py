@@ -64,8 +64,10 @@ def build(record: dict, history: list[dict], *, columns: list[dict] | None = Non
         "job_url": record.get("job_url"),
         "run_id": record.get("run_id"),
         "parameters": {"LANG": "ADQL", "MAXREC": record.get("maxrec"),
-                       "RESPONSEFORMAT": record.get("fmt"),
+                       "RESPONSEFORMAT": record.get("result_fmt") or record.get("fmt"),
                        "UPLOAD": record.get("uploads") or {}},
+        # the format the user asked for (None: chosen from the service's capabilities)
+        "format_requested": record.get("fmt"),
         "scope": record.get("scope"),
         "label": record.get("label"),
         "phase": record.get("phase"),

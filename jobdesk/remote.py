@@ -803,7 +803,14 @@ def _read_capabilities(root: Element) -> dict[str, Any]:
                 adql.append(text)
     uploads = [m.get("ivo-id") for m in _children(cap, "uploadMethod") if m.get("ivo-id")]
     output = _limits(_child(cap, "outputLimit"))
-    return {"standard_id": cap.get("standardID"),
+    # TAPRegExt 1.0 §2.5: each outputFormat has a MIME type, aliases and maybe an ivo-id;
+    # what jobdesk may ask for instead of plain TABLEDATA (see jobdesk.formats).
+    formats = [{"mime": (_child_text(f, "mime") or "").strip(),
+                "aliases": [(a.text or "").strip() for a in _children(f, "alias")],
+                "ivo_id": f.get("ivo-id")}
+               for f in _children(cap, "outputFormat")]
+    return {"output_formats": formats,
+            "standard_id": cap.get("standardID"),
             "interface_version": versions[-1] if versions else None,
             "adql_versions": adql,
             "output_limit": output,

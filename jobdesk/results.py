@@ -522,6 +522,7 @@ class _Reader:
         self.raw = bytearray()
         self.td = self.tr = self.tabledata = ""
         self.ended = False
+        self.declared: str | None = None      # the serialization the Content-Type named
         self.where = lambda: -1               # expat's byte index of the current event
         self.tabledata_at = self.row_end_at = -1
 
@@ -568,7 +569,11 @@ class _Reader:
                 self.fields.append(_Field(attrib, len(self.fields)))
             elif name == "VALUES" and self.stack[-2] == "FIELD" and "null" in attrib and self.fields:
                 self.fields[-1].null = attrib["null"]
-            elif name == "DATA":
+            elif name in ("TABLEDATA", "BINARY", "BINARY2", "FITS") and self.declared and \
+                    name != self.declared:
+                raise ServiceResponseInvalid(
+                    f"the answer declared serialization={self.declared} but holds {name}")
+            if name == "DATA":
                 self.sink.begin(self.fields)
                 self.batch_rows = max(1, min(BATCH_ROWS, BATCH_CELLS // max(1, len(self.fields))))
             elif name == "TABLEDATA":
@@ -719,8 +724,10 @@ class _Reader:
                              fields=[f.describe() for f in self.fields], infos=dict(self.infos))
 
 
-def _read(source: IO[bytes], sink) -> tuple[ResultSummary, list[_Field]]:
+def _read(source: IO[bytes], sink, serialization: str | None = None
+          ) -> tuple[ResultSummary, list[_Field]]:
     reader = _Reader(sink)
+    reader.declared = serialization
     # defusedxml refuses DTDs, entity declarations and external references outright, so
     # entity-expansion bombs and file/URL inclusion never reach the reader.
     parser = DefusedXMLParser(target=reader, forbid_dtd=True, forbid_entities=True,
@@ -1021,12 +1028,14 @@ def scan(votable: Path) -> ResultSummary:
         return _read(fh, _Counter())[0]
 
 
-def to_parquet(votable: Path, parquet: Path, *,
-               metadata: dict[str, str] | None = None) -> ResultSummary:
+def to_parquet(votable: Path, parquet: Path, *, metadata: dict[str, str] | None = None,
+               serialization: str | None = None) -> ResultSummary:
     """Copy a VOTable result to Parquet in bounded memory; returns the scan summary.
 
     The file appears at ``parquet`` only when complete (temp file in the same directory,
-    then rename), with ``metadata`` and the summary in its schema metadata.
+    then rename), with ``metadata`` and the summary in its schema metadata. ``serialization``
+    ("BINARY2", ...) is what the answer declared (its Content-Type): bytes that differ are
+    refused rather than guessed at.
     """
     parquet = Path(parquet)
     tmp = parquet.with_name(f".{parquet.name}.{os.getpid()}.partial")
@@ -1035,7 +1044,7 @@ def to_parquet(votable: Path, parquet: Path, *,
     sink = _ParquetSink(tmp, user)
     try:
         with open(votable, "rb") as fh:
-            reader_summary, fields = _read(fh, sink)
+            reader_summary, fields = _read(fh, sink, serialization)
         extra = {SUMMARY_KEY: reader_summary.to_json(),
                  METADATA_KEY: json.dumps(user, sort_keys=True)}
         sink.finish(fields, extra)
@@ -1045,6 +1054,22 @@ def to_parquet(votable: Path, parquet: Path, *,
         tmp.unlink(missing_ok=True)
         raise
     return reader_summary
+
+
+def describe(votable_xml: bytes) -> tuple[ResultSummary, list[pa.Field]]:
+    """The summary and the Arrow fields (with their VOTable metadata) of a VOTable document
+    without rows, such as the one a VOParquet file embeds in its footer."""
+    import io
+
+    summary, fields = _read(io.BytesIO(votable_xml), _Counter())
+    return summary, [f.arrow_field() for f in fields]
+
+
+def cache_keys(summary: ResultSummary, metadata: dict[str, str] | None) -> dict[str, str]:
+    """The file-level keys every Parquet copy in the cache carries: the summary and ours."""
+    user = {k: str(v) for k, v in (metadata or {}).items()
+            if not k.startswith("ARROW:") and k not in (SUMMARY_KEY, METADATA_KEY)}
+    return {**user, SUMMARY_KEY: summary.to_json(), METADATA_KEY: json.dumps(user, sort_keys=True)}
 
 
 def _file_meta(parquet: Path) -> dict[bytes, bytes]:

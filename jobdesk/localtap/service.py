@@ -85,7 +85,8 @@ def plan_query(params: Mapping[str, str], read_part: Callable[[str], bytes | Non
     serialization = serialization_for(fmt)
     if serialization is None:
         raise QueryProblem(f"RESPONSEFORMAT={fmt} is not supported; use votable, "
-                           "application/x-votable+xml;serialization=BINARY2 (votable/b2) or csv")
+                           "application/x-votable+xml;serialization=BINARY2 (votable/b2), "
+                           "application/vnd.apache.parquet (VOParquet) or csv")
     maxrec = max_rec
     if params.get("MAXREC") not in (None, ""):
         try:
@@ -221,7 +222,8 @@ class JobRunner:
                 os.fsync(out.fileno())
             if cancel.is_set():
                 raise Stopped()
-            final = job_dir / ("result.csv" if plan.serialization == "csv" else "result.xml")
+            final = job_dir / {"csv": "result.csv", "parquet": "result.parquet"}.get(
+                plan.serialization, "result.xml")
             os.replace(partial, final)
             if not tap.store.update(job_id, expect={uws.EXECUTING}, phase=uws.COMPLETED,
                                     end_time=time.time(), result_file=final.name,
@@ -957,6 +959,8 @@ def capabilities_xml(base: str, faults: Faults) -> str:
         "<mime>application/x-votable+xml</mime><alias>votable</alias></outputFormat>\n"
         '<outputFormat ivo-id="ivo://ivoa.net/std/TAPRegExt#output-votable-binary2">'
         "<mime>application/x-votable+xml;serialization=BINARY2</mime><alias>votable/b2</alias>"
+        "</outputFormat>\n"
+        "<outputFormat><mime>application/vnd.apache.parquet</mime><alias>parquet</alias>"
         "</outputFormat>\n"
         "<outputFormat><mime>text/csv;header=present</mime><alias>csv</alias></outputFormat>\n"
         '<uploadMethod ivo-id="ivo://ivoa.net/std/TAPRegExt#upload-inline"/>\n'
