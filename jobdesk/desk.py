@@ -786,7 +786,7 @@ class Desk:
             # (unless jobdesk chose the format: then once more with the default).
             if not self._may_fall_back(record, record.get("result_fmt"), exc.message, again=True):
                 self.index.update(job_id, phase=phases.ERROR, finished=time.time(),
-                                  error=f"job {job_id}: the result was refused: {exc.message}",
+                                  error=f"job {job_id}: {_REFUSED}: {exc.message}",
                                   note="the result was refused")
             return
         finally:
@@ -938,7 +938,7 @@ class Job:
             return JobAborted(message, phase=phases.ABORTED, service=service)
         if record["phase"] in (phases.LOST, phases.ARCHIVED):
             return JobLost(f"job {self.id}: {message}", service=service)
-        if _looks_like_query_error(message):
+        if _looks_like_query_error(message) and _REFUSED not in message:
             spot = query_checks.from_service(record["adql"], message)
             if spot is not None:
                 return QueryRejected(f"{message}\n{spot.caret()}", findings=[spot],
@@ -1088,6 +1088,9 @@ def _transient(exc: JobdeskError) -> bool:
     status = getattr(exc, "status", None)
     return isinstance(exc, ServiceUnreachable) or (
         isinstance(exc, ServiceRefused) and status is not None and (status == 429 or status >= 500))
+
+
+_REFUSED = "the result was refused"   # our words: never the service refusing the query
 
 
 def _looks_like_query_error(message: str) -> bool:
