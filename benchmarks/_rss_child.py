@@ -41,12 +41,14 @@ def main() -> None:
 
         base = reset_peak()
         started = time.perf_counter()
-        job = Desk(args["root"]).submit(args["url"], args["adql"],
-                                        maxrec=args["maxrec"]).wait(progress=False)
+        job = Desk(args["root"]).submit(args["url"], args["adql"], maxrec=args["maxrec"],
+                                        fmt=args.get("fmt")).wait(progress=False)
         out["seconds"] = time.perf_counter() - started
         record = job.record
         history = {h["phase"]: h["at"] for h in job.desk.index.history(job.id)}
         out.update(job_url=record["job_url"], rows=record["rows"],
+                   result_fmt=record.get("result_fmt"), result_url=job.desk.store.path(
+                       record["result_sha256"]).as_posix(),
                    result_bytes=record["result_bytes"],
                    # from the service's COMPLETED being seen to the Parquet copy registered:
                    fetch_and_convert_s=(record["finished"] or 0) - history.get("COMPLETED", 0))
@@ -99,6 +101,15 @@ def main() -> None:
         rows = sum(pq.read_table(p).num_rows for p in (args["old"], args["new"]))
         out["seconds"] = time.perf_counter() - started
         out["rows"] = rows
+    elif mode == "pyvo_run":
+        import pyvo
+
+        base = reset_peak()
+        started = time.perf_counter()
+        table = pyvo.dal.TAPService(args["url"]).run_async(
+            args["adql"], maxrec=args["maxrec"]).to_table()
+        out["seconds"] = time.perf_counter() - started
+        out["rows"] = len(table)
     else:
         raise SystemExit(f"unknown mode {mode!r}")
     out["baseline_kb"] = base

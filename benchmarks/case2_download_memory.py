@@ -40,7 +40,7 @@ def run(ctx: Context) -> CaseResult:
     details: dict = {"sizes": []}
     for i, (label, adql, maxrec) in enumerate(sizes(ctx)):
         ours = child("jobdesk", root=str(ctx.work / f"case2-desk-{i}"), url=tap.url, adql=adql,
-                     maxrec=maxrec)
+                     maxrec=maxrec, fmt="votable")   # TABLEDATA: the conversion's memory
         size_mb = ours["result_bytes"] / MB
         ctx.log(f"  {label}: {size_mb:,.0f} MB VOTable; jobdesk +{ours['growth_mb']:.0f} MB "
                 f"in {ours['seconds']:.0f} s")

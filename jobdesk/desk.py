@@ -604,7 +604,8 @@ class Desk:
                 try:
                     job_url = create(fmt)
                 except JobdeskError as exc:
-                    if _transient(exc) or not self._may_fall_back(record, fmt, str(exc)):
+                    if _transient(exc) or not formats.blames_format(str(exc), fmt) or \
+                            not self._may_fall_back(record, fmt, str(exc)):
                         raise
                     job_url = create(formats.DEFAULT)
                 self.index.update(job_id, job_url=job_url, phase=phases.SUBMITTED,
@@ -690,9 +691,9 @@ class Desk:
                 except JobdeskError:
                     detail = ""
                 message = detail or message or "the service reported ERROR without a message"
-                if not (not _looks_like_query_error(message)
-                        and self._may_fall_back(record, record.get("result_fmt"), message,
-                                                again=True)):
+                fmt = record.get("result_fmt")
+                if not (formats.blames_format(message, fmt)
+                        and self._may_fall_back(record, fmt, message, again=True)):
                     self.index.update(job_id, phase=phases.ERROR, error=message,
                                       finished=time.time())
             elif status.phase in (phases.ABORTED, phases.ARCHIVED):
@@ -760,20 +761,8 @@ class Desk:
             fmt = record.get("result_fmt") or record.get("fmt") or formats.DEFAULT
             if formats.is_csv(fmt):
                 summary = results.csv_to_parquet(raw, table, metadata=meta)
-            elif formats.is_voparquet(fmt) and voparquet.is_parquet(raw):
-                summary = voparquet.to_cache(raw, table, metadata=meta)
-            elif voparquet.is_parquet(raw) or formats.is_voparquet(fmt):
-                # what was asked and what came differ (an error document is XML: read it)
-                summary = voparquet.to_cache(raw, table, metadata=meta) \
-                    if voparquet.is_parquet(raw) else results.to_parquet(raw, table, metadata=meta)
-                if summary.status != "ERROR":
-                    raise ServiceResponseInvalid(
-                        f"RESPONSEFORMAT={fmt} was asked for, the service sent "
-                        f"{got.content_type or 'something else'}")
             else:
-                summary = results.to_parquet(
-                    raw, table, metadata=meta,
-                    serialization=formats.declared_serialization(got.content_type))
+                summary = _cache_copy(raw, table, meta, got.content_type)
             if summary.status == "ERROR":
                 self.index.update(job_id, phase=phases.ERROR, finished=time.time(),
                                   error=summary.message or "the result document says ERROR")
@@ -803,7 +792,9 @@ class Desk:
                           rows=summary.rows, truncated=int(truncated), result_sha256=raw_sha,
                           result_bytes=got.bytes, result_stat=stat_stamp(raw_path),
                           parquet_sha256=table_sha, parquet_stat=stat_stamp(table_path),
-                          server=server, error=None, note="result saved")
+                          server=server, error=None, note="result saved",
+                          result_fmt=record.get("result_fmt") or record.get("fmt")
+                          or got.content_type)
         if not truncated:
             self._publish_quietly(job_id)
         if truncated:
@@ -1088,6 +1079,21 @@ def _transient(exc: JobdeskError) -> bool:
     status = getattr(exc, "status", None)
     return isinstance(exc, ServiceUnreachable) or (
         isinstance(exc, ServiceRefused) and status is not None and (status == 429 or status >= 500))
+
+
+def _cache_copy(raw: Path, table: Path, meta: dict, content_type: str | None):
+    """The cache's Parquet copy of a result, by what the bytes are (the job may have been
+    joined from another process, which chose the format); a Content-Type that says otherwise
+    is refused rather than guessed at."""
+    declared = formats.declared_serialization(content_type)
+    if voparquet.is_parquet(raw):
+        if "xml" in (content_type or "").lower():
+            raise ServiceResponseInvalid(f"the answer declared {content_type} but holds Parquet")
+        return voparquet.to_cache(raw, table, metadata=meta)
+    summary = results.to_parquet(raw, table, metadata=meta, serialization=declared)
+    if formats.is_voparquet(content_type) and summary.status != "ERROR":
+        raise ServiceResponseInvalid(f"the answer declared {content_type} but holds XML")
+    return summary
 
 
 _REFUSED = "the result was refused"   # our words: never the service refusing the query

@@ -61,3 +61,11 @@ def declared_serialization(content_type: str | None) -> str | None:
         if name == "serialization" and value:
             return value.upper()
     return None
+
+
+def blames_format(message: str | None, fmt: str | None) -> bool:
+    """Whether a job's error text points at its result format (common practice, no source:
+    services word this differently; a restart or a bad query must not cost a second run)."""
+    text = _squeeze(message)
+    words = ("responseformat", "format", "parquet", "binary2", "serializ", _squeeze(fmt))
+    return bool(text) and any(w and w in text for w in words)

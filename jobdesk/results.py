@@ -33,7 +33,7 @@ from jobdesk.errors import ServiceResponseInvalid
 __all__ = ["ResultSummary", "to_parquet", "scan", "load_table", "load_frame", "error_message",
            "read_metadata"]
 
-READ_CHUNK = 4 << 20          # bytes read at a time (fed to the XML parser, or the bulk path)
+READ_CHUNK = 2 << 20          # bytes read at a time (fed to the XML parser, or the bulk path)
 BATCH_CELLS = 100_000         # cells per Arrow batch: bounds memory whatever the column count
 BATCH_ROWS = 50_000
 ROW_GROUP_ROWS = 1_000_000    # larger row groups read back faster ...
@@ -914,7 +914,8 @@ class _TableDataSplitter:
         rows = body.count(self.tr_close)
         try:
             table = pacsv.read_csv(pa.py_buffer(text), read_options=pacsv.ReadOptions(
-                column_names=self.names, block_size=max(1 << 20, len(text) // 2 + 1)),
+                column_names=self.names, use_threads=False,
+                block_size=len(text) + 1),
                 parse_options=_CSV_PARSE, convert_options=pacsv.ConvertOptions(
                     column_types={n: pa.string() for n in self.names},
                     strings_can_be_null=False, quoted_strings_can_be_null=False,

@@ -18,7 +18,7 @@ import requests
 from astropy.io.votable import parse
 from astropy.table import Table
 
-from jobdesk import Desk, JobFailed, formats, keys
+from jobdesk import Desk, JobFailed, QueryRejected, formats, keys
 from jobdesk.localtap import serve
 from jobdesk.localtap import votable_out
 
@@ -197,3 +197,20 @@ def test_bad_binary_input_is_refused_naming_the_job_and_the_next_attempt_is_clea
     again = desk.submit(tap.url, QUERY, fmt=fmt)
     assert again.id != job.id
     assert len(again.wait(progress=False).table()) > 0
+
+
+def test_a_job_error_naming_the_format_gets_one_retry_but_other_errors_do_not(tap, desk,
+                                                                                monkeypatch):
+    def refuses(out, result, **kw):
+        raise ValueError("cannot write this result as Parquet")
+
+    monkeypatch.setitem(votable_out.WRITERS, "parquet", refuses)
+    job = desk.submit(tap.url, QUERY + "  ", label="job error").wait(progress=False)
+    assert job.record["result_fmt"] == formats.DEFAULT
+    assert job.record["run_id"].endswith("-default")   # a RUNID of its own for the retry
+    assert len(job.table()) > 0
+    # a bad query is not the format's fault: it fails once, no second run
+    with pytest.raises((JobFailed, QueryRejected)):
+        desk.submit(tap.url, "SELECT nothing_here FROM orrery.sources").wait(progress=False)
+    bad = desk.jobs(limit=1)[0]
+    assert bad.record["result_fmt"] == formats.VOPARQUET

@@ -227,3 +227,21 @@ def test_provenance_records_the_server_identity_from_vosi_capabilities(tmp_path)
     assert prov["server"]["capabilities"]["software"].startswith("DaCHS")
     assert any(i.version == "1.1" for i in tap.interfaces)
     assert '"1.1"' in text
+
+
+def test_negotiates_binary2_from_the_capabilities_and_the_table_is_the_same(tmp_path):
+    # DaCHS lists BINARY2 (TAPRegExt outputFormat ivo-id #output-votable-binary2) and no
+    # VOParquet, so that is what jobdesk asks for; TABLEDATA asked for explicitly, and pyvo's
+    # answer, must hold the same table (VOTable 1.4 §5.5: a serialization, not another table).
+    adql = (f"SELECT obj_id, label, ra, dec, mag_blue, quality FROM {TABLE} "
+            f"WHERE mag_blue < 16.5 ORDER BY obj_id")
+    desk = Desk(root=tmp_path)
+    job = desk.submit(TAP_URL, adql, maxrec=5000).wait(timeout=WAIT, progress=False)
+    assert "serialization=binary2" in job.record["result_fmt"].lower()
+    assert job.provenance()["parameters"]["RESPONSEFORMAT"] == job.record["result_fmt"]
+    text = desk.submit(TAP_URL, adql, maxrec=5000, fmt="votable/td").wait(timeout=WAIT,
+                                                                          progress=False)
+    assert text.key != job.key and text.record["result_fmt"] == "votable/td"
+    assert_same_table(job.table(), text.table())
+    reference = pyvo.dal.TAPService(TAP_URL).run_async(adql, maxrec=5000).to_table()
+    assert_same_table(job.table(), reference)
