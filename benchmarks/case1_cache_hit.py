@@ -52,7 +52,9 @@ def run(ctx: Context) -> CaseResult:
 
     # The first run: the job runs on the service, jobdesk streams it and makes its Parquet copy.
     desk = Desk(root)
-    first, job = timed(lambda: desk.submit(tap.url, ADQL, maxrec=rows).wait(progress=False))
+    # TABLEDATA asked for: pyvo re-fetches the same VOTable below (the key is the default's)
+    first, job = timed(lambda: desk.submit(tap.url, ADQL, maxrec=rows, fmt="votable")
+                       .wait(progress=False))
     record = job.record
     ctx.log(f"  first fetch: {record['rows']:,} rows, {record['result_bytes'] / 1e6:.0f} MB "
             f"VOTable in {first:.1f} s (service execution included)")

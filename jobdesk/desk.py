@@ -30,7 +30,7 @@ from jobdesk.errors import (
 )
 from jobdesk.groups import GroupCaches
 from jobdesk.index import Index, this_process
-from jobdesk.remote import Remote
+from jobdesk.remote import JobStatus, Remote
 from jobdesk.store import Store, stat_stamp
 
 DEFAULT_RUNNING_LIMIT = 4     # jobs per service at once; common practice, no source
@@ -612,6 +612,13 @@ class Desk:
                                   submitted=time.time(), error=None,
                                   note="created on the service")
                 remote.run(job_url)
+                # A job just sent RUN is most often EXECUTING at once: the first wait blocks on
+                # that phase (UWS 1.1 §2.2.1.2) instead of first reading the phase, one request
+                # less; a wrong guess costs none, as WAIT with another PHASE returns at once.
+                self._last_status[job_url] = JobStatus(
+                    url=job_url, phase=phases.EXECUTING, run_id=record["run_id"],
+                    uws_version="1.1", creation_time=None, start_time=None, end_time=None,
+                    destruction=None, error_summary=None, error_type=None, result_url=None)
                 self._announce(job_id)
             else:
                 self.index.update(job_id, job_url=job_url, phase=phases.SUBMITTED,
