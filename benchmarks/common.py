@@ -43,6 +43,7 @@ CASE_NAMES = {
     "case7": "shaping",
     "case8": "compare",
     "case9": "rerun",
+    "case10": "first-fetch",
 }
 
 # A comparison word and its opposite: a ratio below 1 is read the other way round, so that

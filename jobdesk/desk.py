@@ -596,7 +596,7 @@ class Desk:
                 sent = {name: self.store.path(sha).read_bytes()
                         for name, sha in (record.get("uploads") or {}).items()}
                 fmt = record.get("fmt") or record.get("result_fmt") or \
-                    formats.choose(self._capabilities(record["service"], formats=True))
+                    formats.choose(self._capabilities(record["service"], output_formats=True))
 
                 def create(fmt: str) -> str:
                     self.index.update(job_id, result_fmt=fmt)
@@ -746,14 +746,14 @@ class Desk:
         record["result_fmt"] = formats.DEFAULT
         return True
 
-    def _capabilities(self, service: str, *, formats: bool = False) -> dict:
+    def _capabilities(self, service: str, *, output_formats: bool = False) -> dict:
         """The service's VOSI capabilities, read once per service and kept in the index.
 
         Read through its own Remote so the request is not charged to the job; a failure is
         recorded in the answer and read again next time, never failing the job.
         """
         known = self.index.service_info(service)
-        if known is not None and (not formats or "output_formats" in known):
+        if known is not None and (not output_formats or "output_formats" in known):
             return known
         info = self._remote(service).capabilities()
         if "error" not in info:

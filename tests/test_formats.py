@@ -214,3 +214,12 @@ def test_a_job_error_naming_the_format_gets_one_retry_but_other_errors_do_not(ta
         desk.submit(tap.url, "SELECT nothing_here FROM orrery.sources").wait(progress=False)
     bad = desk.jobs(limit=1)[0]
     assert bad.record["result_fmt"] == formats.VOPARQUET
+
+
+@pytest.mark.parametrize("fmt", list(EXPLICIT))
+def test_overflow_is_known_in_every_format(tap, desk, fmt):
+    # DALI 1.1 §4.4.1: OVERFLOW follows the table; VOParquet's footer, written last, carries it
+    job = desk.submit(tap.url, QUERY, maxrec=50, fmt=fmt)
+    with pytest.warns(Warning):
+        job.wait(progress=False)
+    assert job.truncated is True and job.rows == 50
