@@ -30,7 +30,7 @@ from jobdesk.errors import (
 )
 from jobdesk.groups import GroupCaches
 from jobdesk.index import Index, this_process
-from jobdesk.remote import JobStatus, Remote
+from jobdesk.remote import Remote
 from jobdesk.store import Store, stat_stamp
 
 DEFAULT_RUNNING_LIMIT = 4     # jobs per service at once; common practice, no source
@@ -82,7 +82,6 @@ class Desk:
         self.drive_slice = wait_window + 1.0
         self._last_status: dict[str, object] = {}
         self._held_run: dict[str, float] = {}   # job URL -> when RUN was last sent to it HELD
-        self._guessed: set[str] = set()   # job URLs whose last status is the guess after RUN
         self._sessions: dict[str, object] = {}
         self.groups = GroupCaches(groups, root=self.root)  # lookup order: personal, then these
 
@@ -613,14 +612,6 @@ class Desk:
                                   submitted=time.time(), error=None,
                                   note="created on the service")
                 remote.run(job_url)
-                # A job just sent RUN is most often EXECUTING at once: the first wait blocks on
-                # that phase (UWS 1.1 §2.2.1.2) instead of first reading the phase, one request
-                # less; a wrong guess costs none, as WAIT with another PHASE returns at once.
-                self._last_status[job_url] = JobStatus(
-                    url=job_url, phase=phases.EXECUTING, run_id=record["run_id"],
-                    uws_version="1.1", creation_time=None, start_time=None, end_time=None,
-                    destruction=None, error_summary=None, error_type=None, result_url=None)
-                self._guessed.add(job_url)
                 self._announce(job_id)
             else:
                 self.index.update(job_id, job_url=job_url, phase=phases.SUBMITTED,
@@ -688,16 +679,9 @@ class Desk:
                 status = remote.status(record["job_url"])
                 seen(status)
             else:
-                known = self._last_status.get(record["job_url"])
                 status = remote.wait(record["job_url"], deadline=deadline, on_status=seen,
-                                     known=known)
-                if status is known and record["job_url"] in self._guessed:
-                    # only the guess made after RUN came back: nothing was read from the
-                    # service in this slice, so read once (its failure is then the error)
-                    status = remote.status(record["job_url"])
-                    seen(status)
+                                     known=self._last_status.get(record["job_url"]))
             self._last_status[record["job_url"]] = status
-            self._guessed.discard(record["job_url"])
             if status.phase == phases.COMPLETED:
                 self._fetch(record, status, remote, on_transfer=on_transfer)
             elif status.phase == phases.ERROR:
