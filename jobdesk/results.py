@@ -33,7 +33,7 @@ from jobdesk.errors import ServiceResponseInvalid
 __all__ = ["ResultSummary", "to_parquet", "scan", "load_table", "load_frame", "error_message",
            "read_metadata"]
 
-READ_CHUNK = 2 << 20          # bytes read at a time (fed to the XML parser, or the bulk path)
+READ_CHUNK = 1 << 20          # bytes read at a time (fed to the XML parser, or the bulk path)
 BATCH_CELLS = 100_000         # cells per Arrow batch: bounds memory whatever the column count
 BATCH_ROWS = 50_000
 ROW_GROUP_ROWS = 1_000_000    # larger row groups read back faster ...
