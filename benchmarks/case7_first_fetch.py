@@ -79,13 +79,16 @@ def run(ctx: Context) -> CaseResult:
             src = ctx.work / "case7.vot"
             Remote(tap.url).download(url, src)
             out = ctx.work / "case7.parquet"
-            bulk_s, _ = timed(lambda: results.to_parquet(src, out))
             keep = results._declares_utf8
-            results._declares_utf8 = lambda head: False
-            try:
-                xml_s, _ = timed(lambda: results.to_parquet(src, out))
-            finally:
-                results._declares_utf8 = keep
+            bulk_runs, xml_runs = [], []
+            for _ in range(3 if ctx.quick else 1):   # alternating: a busy neighbour hits both
+                bulk_runs.append(timed(lambda: results.to_parquet(src, out))[0])
+                results._declares_utf8 = lambda head: False
+                try:
+                    xml_runs.append(timed(lambda: results.to_parquet(src, out))[0])
+                finally:
+                    results._declares_utf8 = keep
+            bulk_s, xml_s = min(bulk_runs), min(xml_runs)
             src.unlink(missing_ok=True)
             out.unlink(missing_ok=True)
             rate, xml_rate = size / MB / bulk_s, size / MB / xml_s
