@@ -29,7 +29,7 @@ CASES = {
     "case7": ("case7_shaping", "metadata memory, find, tables page, check"),
     "case8": ("case8_compare", "comparing two large results by key vs reading them"),
     "case9": ("case9_rerun", "re-running an analysis of cache hits"),
-    "case10": ("case7_first_fetch", "first fetch by result format, split, vs pyvo"),
+    "case10": ("case10_first_fetch", "first fetch by result format, split, vs pyvo"),
 }
 
 

@@ -1,4 +1,4 @@
-"""Case 7: the first fetch of a large result, submit to cached table, by result format.
+"""Case 10: the first fetch of a large result, submit to cached table, by result format.
 
 One query (the catalogue several times over), run once per format in a process of its own
 (``benchmarks._rss_child``): TABLEDATA, BINARY2, VOParquet, and what jobdesk negotiates by
@@ -48,12 +48,12 @@ def run(ctx: Context) -> CaseResult:
     seen: dict[str, dict] = {}
     for name, fmt in FORMATS.items():
         # a distinct query text per format: each is a first fetch, none a cache hit
-        ours = child("jobdesk", root=str(ctx.work / f"case7-{name}"), url=tap.url,
+        ours = child("jobdesk", root=str(ctx.work / f"case10-{name}"), url=tap.url,
                      adql=adql + f" -- {name}", maxrec=maxrec, fmt=fmt)
         ctx.forget_later(ours["job_url"])
         url = ours["job_url"] + "/results/result"
         service_s = _service_seconds(remote, ours["job_url"])
-        dest = ctx.work / "case7.curl"
+        dest = ctx.work / "case10.curl"
         curl_s, _ = timed(lambda: subprocess.run([curl, "-s", "-S", "-f", "-o", str(dest), url],
                                                  check=True))
         dest.unlink(missing_ok=True)
@@ -70,15 +70,15 @@ def run(ctx: Context) -> CaseResult:
                 f"curl {curl_s:.2f}); +{ours['growth_mb']:.0f} MB")
         if name in ("BINARY2", "VOParquet"):
             floor = service_s + curl_s
-            rows.append(Row("case7", f"first fetch, {name}, submit to cached table, "
+            rows.append(Row("case10", f"first fetch, {name}, submit to cached table, "
                             f"{size / MB:,.0f} MB", ours["seconds"], "s",
                             "service execution + curl", floor, ours["seconds"] / floor,
                             "that time", "<= 1.5x", ours["seconds"] / floor <= 1.5))
         if name == "TABLEDATA":
             # the conversion alone, on the same bytes: the bulk path against the XML-only path
-            src = ctx.work / "case7.vot"
+            src = ctx.work / "case10.vot"
             Remote(tap.url).download(url, src)
-            out = ctx.work / "case7.parquet"
+            out = ctx.work / "case10.parquet"
             keep = results._declares_utf8
             bulk_runs, xml_runs = [], []
             for _ in range(3 if ctx.quick else 1):   # alternating: a busy neighbour hits both
@@ -93,18 +93,18 @@ def run(ctx: Context) -> CaseResult:
             out.unlink(missing_ok=True)
             rate, xml_rate = size / MB / bulk_s, size / MB / xml_s
             details["tabledata_conversion"] = {"bulk_s": bulk_s, "xml_s": xml_s}
-            rows.append(Row("case7", f"TABLEDATA conversion to Parquet, {size / MB:,.0f} MB",
+            rows.append(Row("case10", f"TABLEDATA conversion to Parquet, {size / MB:,.0f} MB",
                             rate, "MB/s", "XML-only path", xml_rate, rate / xml_rate,
                             "faster", ">= 60 MB/s", rate >= 60))
     theirs = child("pyvo_run", url=tap.url, adql=adql + " -- pyvo", maxrec=maxrec)
     details["pyvo"] = theirs
     best = seen["negotiated"]
-    rows.append(Row("case7", "end to end, negotiated, vs pyvo run_async().to_table()",
+    rows.append(Row("case10", "end to end, negotiated, vs pyvo run_async().to_table()",
                     best["total_s"], "s", "pyvo run_async().to_table()", theirs["seconds"],
                     theirs["seconds"] / best["total_s"], "faster", ">= 4x faster",
                     theirs["seconds"] / best["total_s"] >= 4))
     for name in ("negotiated", "TABLEDATA"):
-        rows.append(Row("case7", f"peak RSS growth, first fetch, {name}", seen[name]["growth_mb"],
+        rows.append(Row("case10", f"peak RSS growth, first fetch, {name}", seen[name]["growth_mb"],
                         "MB", "pyvo run_async().to_table()", theirs["growth_mb"],
                         theirs["growth_mb"] / max(seen[name]["growth_mb"], 1.0), "less memory",
                         "< 100 MB", seen[name]["growth_mb"] < 100))
