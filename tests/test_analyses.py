@@ -174,7 +174,7 @@ def test_cli_analyses_rerun_compare(tap, desk, tmp_path, capsys):
 def test_index_from_before_analyses_is_migrated_and_keeps_its_jobs(tmp_path):
     import sqlite3
 
-    from jobdesk.index import SCHEMA_VERSION, Index
+    from jobdesk.index import MIGRATIONS, Index, _add_analyses_and_plans
     path = tmp_path / "index.sqlite"
     index = Index(path)
     index.insert({"id": "00112233aabbccdd", "key": "k" * 64, "service": "http://x.invalid/tap",
@@ -184,7 +184,8 @@ def test_index_from_before_analyses_is_migrated_and_keeps_its_jobs(tmp_path):
     conn.execute("DROP TABLE analysis_steps")
     conn.execute("DROP TABLE plans")
     conn.execute("ALTER TABLE jobs DROP COLUMN analysis")
-    conn.execute(f"PRAGMA user_version = {SCHEMA_VERSION - 1}")   # the schema before analyses
+    # the schema before analyses (later migrations may follow it in MIGRATIONS)
+    conn.execute(f"PRAGMA user_version = {MIGRATIONS.index(_add_analyses_and_plans)}")
     conn.commit()
     conn.close()
     index = Index(path)
