@@ -202,6 +202,12 @@ class CacheCorrupt(JobdeskError):
     hint = "submit again with refresh=True to fetch a fresh copy; the bad file was set aside"
 
 
+class QuickLookUnavailable(JobdeskError):
+    """A quick look cannot be drawn from this result (no position columns, not a number column)."""
+
+    hint = "pick a numeric column from the result's column list"
+
+
 class PublishRefused(JobdeskError):
     """A result cannot go to a group cache: the layer is read-only or you may not write there."""
 
