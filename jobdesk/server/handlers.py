@@ -22,6 +22,9 @@ Routes::
     POST   plans/<id>/start          submit the steps that can run now   {"plan": {...}}
     GET    compare/<old>/<new>?key=K Desk.compare(...).as_dict()
     GET    compare/<old>/<new>/report?key=K   the self-contained HTML report (text/html)
+    GET    jobs/<id>/quicklook       {"sky": {"ra", "dec"}|null, "numeric": [{"name", "unit"}]}
+    GET    jobs/<id>/quicklook/sky   image/svg+xml: source density (cached by result checksum)
+    GET    jobs/<id>/quicklook/histogram?column=NAME   image/svg+xml: histogram of one column
     GET    cache                     Desk.cache_summary()
     GET    changes?since=<token>     {"token": t, "changed": bool}; waits while nothing changed
 """
@@ -337,6 +340,36 @@ class CompareHandler(DeskHandler):
         self.reply(await self.call(_compare, old, new, key))
 
 
+def _quicklook(desk, job_id: str, kind: str, column: str = "") -> str | dict:
+    from jobdesk import quicklook
+
+    path, sha = quicklook.for_job(desk.job(job_id))
+    looks = quicklook.QuickLooks(desk.root)
+    if kind == "describe":
+        return looks.describe(path)
+    if kind == "sky":
+        return looks.sky(path, sha)
+    return looks.histogram(path, sha, column)
+
+
+class QuickLookHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def get(self, raw_id: str, kind: str | None = None) -> None:
+        job_id = self.job_id(raw_id)
+        if kind is None:
+            self.reply(await self.call(_quicklook, job_id, "describe"))
+            return
+        column = ""
+        if kind == "histogram":
+            column = self.get_argument("column", "")
+            if not column:
+                raise tornado.web.HTTPError(400, reason="column is required")
+        svg = await self.call(_quicklook, job_id, kind, column)
+        self.set_header("Content-Type", "image/svg+xml; charset=utf-8")
+        self.set_header("Cache-Control", "private, no-cache")
+        super(APIHandler, self).finish(svg)  # APIHandler.finish would say application/json
+
+
 class CacheHandler(DeskHandler):
     @tornado.web.authenticated
     async def get(self) -> None:
@@ -371,6 +404,8 @@ def routes() -> list[tuple[str, type[DeskHandler]]]:
         (r"plans/([^/]+)", PlanHandler),
         (r"plans/([^/]+)/start", PlanStartHandler),
         (r"compare/([^/]+)/([^/]+?)(/report)?", CompareHandler),
+        (one + r"/quicklook", QuickLookHandler),
+        (one + r"/quicklook/(sky|histogram)", QuickLookHandler),
         (r"cache", CacheHandler),
         (r"changes", ChangesHandler),
     ]

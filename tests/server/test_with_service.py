@@ -125,3 +125,37 @@ def test_cache_counts_results_once_not_their_files(server, desk, quick_tap):
     assert after["entries"] - before["entries"] == 2
     assert after["results"] - before["results"] == 1
     assert after["layers"][0]["results"] == after["results"]
+
+
+def test_quicklook_of_a_finished_job(server, desk, quick_tap):
+    import xml.etree.ElementTree as ET
+
+    import numpy as np
+
+    job = desk.submit(quick_tap.url, "SELECT orrery_id, ra, dec, mag_lime FROM orrery.sources "
+                      "WHERE dec > 0", label="north").wait(timeout=60, progress=False)
+    api = server.url(f"jobdesk/api/jobs/{job.id}/quicklook")
+    about = requests.get(api, headers=server.auth, timeout=30)
+    assert about.status_code == 200, about.text
+    assert about.json()["sky"] == {"ra": "ra", "dec": "dec"}
+    assert "mag_lime" in [c["name"] for c in about.json()["numeric"]]
+    sky = requests.get(api + "/sky", headers=server.auth, timeout=60)
+    assert sky.status_code == 200 and sky.headers["Content-Type"].startswith("image/svg+xml")
+    root = ET.fromstring(sky.text)
+    title = root.find("{http://www.w3.org/2000/svg}title").text
+    assert f"{job.record['rows']:,} sources" in title
+    # The axis unit is the service's own FIELD unit (localtap declares ra in deg).
+    assert "ra [deg]" in sky.text
+    hist = requests.get(api + "/histogram", params={"column": "mag_lime"}, headers=server.auth,
+                        timeout=60)
+    assert hist.status_code == 200 and "mag_lime [mag]" in hist.text
+    # The bars' heights follow numpy.histogram of the same column read through astropy.
+    column = job.table()["mag_lime"]
+    values = np.ma.filled(np.ma.asarray(column, dtype=float), np.nan)
+    counts, _ = np.histogram(values[np.isfinite(values)], bins=60)
+    assert f"fullest bin {int(counts.max()):,} rows" in hist.text
+    bad = requests.get(api + "/histogram", params={"column": "nope"}, headers=server.auth,
+                       timeout=30)
+    assert bad.status_code == 409 and "nope" in bad.json()["message"]
+    # Cached by checksum: the image file exists under the desk root.
+    assert list((server.desk_root / "quicklook").rglob(f"{job.record['parquet_sha256']}-sky-*"))
