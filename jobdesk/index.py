@@ -146,6 +146,16 @@ def _add_result_format(db: sqlite_utils.Database) -> None:
         db.execute("ALTER TABLE jobs ADD COLUMN result_fmt TEXT")
 
 
+@_migration
+def _sidebar_sort_indexes(db: sqlite_utils.Database) -> None:
+    # The sidebar sorts by finish time, size or rows and groups by notebook: with 100,000s of
+    # jobs a first page must come from an index walk, not a sort of every row.
+    for cols in (("finished",), ("result_bytes",), ("rows",), ("notebook", "created"),
+                 ("analysis", "created")):
+        db.execute(f"CREATE INDEX IF NOT EXISTS idx_jobs_{'_'.join(cols)} "
+                   f"ON jobs ({', '.join(cols)})")
+
+
 SCHEMA_VERSION = len(MIGRATIONS)
 BUSY_TIMEOUT_MS = 30_000
 
@@ -243,9 +253,15 @@ class Index:
             return [dict(zip(("phase", "at", "note"), r)) for r in cur.fetchall()]
 
     def list(self, *, phase: str | list[str] | None = None, service: str | None = None,
-             text: str | None = None, limit: int | None = 50, offset: int = 0) -> list[dict]:
-        where, args = _filters(phase, service, text)
-        sql = f"SELECT * FROM jobs {where} ORDER BY created DESC, rowid DESC"
+             text: str | None = None, limit: int | None = 50, offset: int = 0,
+             sort: str = "created", notebook: str | None = None,
+             analysis: str | None = None) -> list[dict]:
+        """Records, newest first (or largest first for ``sort`` = ``rows``/``result_bytes``,
+        latest finished first for ``finished``); ``notebook=""`` picks jobs with no notebook."""
+        where, args = _filters(phase, service, text, notebook, analysis)
+        if sort not in SORTS:
+            raise ValueError(f"cannot sort by {sort!r}; one of {', '.join(SORTS)}")
+        sql = f"SELECT * FROM jobs {where} ORDER BY {sort} DESC, rowid DESC"
         if limit is not None:
             sql += " LIMIT ? OFFSET ?"
             args += [int(limit), int(offset)]
@@ -274,8 +290,9 @@ class Index:
         return sorted(rows, key=lambda r: r["created"])
 
     def count(self, *, phase: str | list[str] | None = None, service: str | None = None,
-              text: str | None = None) -> int:
-        where, args = _filters(phase, service, text)
+              text: str | None = None, notebook: str | None = None,
+              analysis: str | None = None) -> int:
+        where, args = _filters(phase, service, text, notebook, analysis)
         with self._lock:
             return self.db.execute(f"SELECT count(*) FROM jobs {where}", args).fetchone()[0]
 
@@ -286,6 +303,28 @@ class Index:
             rows = self.db.execute("SELECT DISTINCT parquet_sha256 FROM jobs "
                                    "WHERE parquet_sha256 IS NOT NULL").fetchall()
         return {row[0] for row in rows}
+
+    def groups(self, by: str, *, phase: str | list[str] | None = None,
+               service: str | None = None, text: str | None = None) -> list[dict]:
+        """Jobs per notebook (or analysis): how many, how many cached, and the bytes and rows
+        of their cached results, largest cache use first."""
+        if by not in GROUPINGS or by not in self.columns():
+            return []
+        where, args = _filters(phase, service, text)
+        sql = (f"SELECT coalesce({by}, '') AS value, count(*) AS jobs, "
+               f"sum(parquet_sha256 IS NOT NULL) AS cached, "
+               f"coalesce(sum(CASE WHEN parquet_sha256 IS NOT NULL THEN result_bytes END), 0) "
+               f"AS bytes, coalesce(sum(CASE WHEN parquet_sha256 IS NOT NULL THEN rows END), 0) "
+               f"AS rows FROM jobs {where} GROUP BY 1 ORDER BY bytes DESC, jobs DESC, value")
+        with self._lock:
+            cur = self.db.execute(sql, args)
+            names = [d[0] for d in cur.description]
+            return [dict(zip(names, r)) for r in cur.fetchall()]
+
+    def columns(self) -> set[str]:
+        """The job table's columns (another branch may add some, e.g. ``analysis``)."""
+        with self._lock:
+            return {r[1] for r in self.db.execute("PRAGMA table_info(jobs)").fetchall()}
 
     def version(self) -> str:
         """A cheap token that changes whenever any job row changes (for change feeds)."""
@@ -645,8 +684,18 @@ def _insert(conn: sqlite3.Connection, table: str, record: dict) -> None:
                  list(record.values()))
 
 
-def _filters(phase, service, text) -> tuple[str, list]:
+SORTS = ("created", "finished", "rows", "result_bytes")
+GROUPINGS = ("notebook", "analysis")
+
+
+def _filters(phase, service, text, notebook=None, analysis=None) -> tuple[str, list]:
     clauses, args = [], []
+    for name, value in (("notebook", notebook), ("analysis", analysis)):
+        if value == "":
+            clauses.append(f"({name} IS NULL OR {name} = '')")
+        elif value is not None:
+            clauses.append(f"{name} = ?")
+            args.append(value)
     if phase:
         wanted = [phase] if isinstance(phase, str) else list(phase)
         clauses.append(f"phase IN ({','.join('?' * len(wanted))})")

@@ -10,7 +10,10 @@ block the server's event loop.
 
 Routes::
 
-    GET    jobs?phase=A,B&service=URL&text=T&limit=N&offset=M   {"jobs": [...], "total": n, ...}
+    GET    jobs?phase=A,B&service=URL&text=T&notebook=P&analysis=A&sort=S&limit=N&offset=M
+                                     {"jobs": [...], "total": n, ...}; S: created (newest
+                                     first), finished, rows, size (largest first)
+    GET    groups?by=notebook|analysis&phase=..   jobs, cached jobs, bytes, rows per group
     GET    jobs/<id>                 {"job": {...}, "history": [...], "provenance": {...}|null}
     DELETE jobs/<id>                 forget the record               {"forgotten": id}
     POST   jobs/<id>/abort           abort on the service            {"job": {...}}
@@ -44,6 +47,7 @@ from jupyter_server.base.handlers import APIHandler
 
 from jobdesk import phases
 from jobdesk.errors import BadServiceURL, JobdeskError, ResultUnavailable, ServiceError
+from jobdesk.index import GROUPINGS, SORTS
 from jobdesk.keys import service_id
 
 JOB_ID = re.compile(r"^[0-9a-f]{6,64}$")
@@ -194,9 +198,31 @@ def _filters(handler: DeskHandler) -> dict:
             service_id(service)
         except BadServiceURL:  # the client's bad filter, not a failing service (502)
             raise tornado.web.HTTPError(400, reason="service must be an http(s) URL") from None
-    return {"phase": wanted or None,
-            "service": service,
-            "text": (handler.get_argument("text", None) or "").strip() or None}
+    out = {"phase": wanted or None,
+           "service": service,
+           "text": (handler.get_argument("text", None) or "").strip() or None}
+    for name in GROUPINGS:  # "" asks for the jobs with no notebook (or analysis)
+        value = handler.get_argument(name, None)
+        if value is not None:
+            out[name] = value
+    return out
+
+
+def _sort(handler: DeskHandler) -> str:
+    sort = handler.get_argument("sort", "created")
+    sort = {"size": "result_bytes", "time": "created", "bytes": "result_bytes"}.get(sort, sort)
+    if sort not in SORTS:
+        raise tornado.web.HTTPError(400, reason="sort is one of created, finished, rows, size")
+    return sort
+
+
+def _where(desk, filters: dict) -> dict:
+    """Filters for the index: the service as the index spells it; a grouping column another
+    version of the index lacks (``analysis``) matches nothing rather than failing."""
+    where = dict(filters)
+    if where.get("service"):
+        where["service"] = service_id(where["service"])
+    return where
 
 
 def _int_arg(handler: DeskHandler, name: str, default: int, low: int, high: int) -> int:
@@ -210,10 +236,21 @@ def _int_arg(handler: DeskHandler, name: str, default: int, low: int, high: int)
     return max(low, min(high, value))
 
 
-def _list_page(desk, filters: dict, limit: int, offset: int) -> dict:
-    jobs = desk.jobs(**filters, limit=limit, offset=offset)
-    return {"jobs": [job.record for job in jobs], "total": desk.count(**filters),
-            "limit": limit, "offset": offset, "token": change_token(desk)}
+def _list_page(desk, filters: dict, limit: int, offset: int, sort: str = "created") -> dict:
+    where = _where(desk, filters)
+    if "analysis" in where and "analysis" not in desk.index.columns():
+        return {"jobs": [], "total": 0, "limit": limit, "offset": offset, "sort": sort,
+                "token": change_token(desk)}
+    jobs = desk.index.list(**where, limit=limit, offset=offset, sort=sort)
+    return {"jobs": jobs, "total": desk.index.count(**where), "limit": limit, "offset": offset,
+            "sort": sort, "token": change_token(desk)}
+
+
+def _groups(desk, by: str, filters: dict) -> dict:
+    where = _where(desk, filters)
+    where.pop("notebook", None), where.pop("analysis", None)
+    return {"by": by, "available": by in desk.index.columns(),
+            "groups": desk.index.groups(by, **where)}
 
 
 def _details(desk, job_id: str) -> dict:
@@ -244,7 +281,16 @@ class JobsHandler(DeskHandler):
         filters = _filters(self)
         limit = _int_arg(self, "limit", 100, 1, MAX_PAGE)
         offset = _int_arg(self, "offset", 0, 0, 10**9)
-        self.reply(await self.call(_list_page, filters, limit, offset))
+        self.reply(await self.call(_list_page, filters, limit, offset, _sort(self)))
+
+
+class GroupsHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def get(self) -> None:
+        by = self.get_argument("by", "notebook")
+        if by not in GROUPINGS:
+            raise tornado.web.HTTPError(400, reason="by is notebook or analysis")
+        self.reply(await self.call(_groups, by, _filters(self)))
 
 
 class JobHandler(DeskHandler):
@@ -406,6 +452,7 @@ def routes() -> list[tuple[str, type[DeskHandler]]]:
         (r"compare/([^/]+)/([^/]+?)(/report)?", CompareHandler),
         (one + r"/quicklook", QuickLookHandler),
         (one + r"/quicklook/(sky|histogram)", QuickLookHandler),
+        (r"groups", GroupsHandler),
         (r"cache", CacheHandler),
         (r"changes", ChangesHandler),
     ]
