@@ -2,6 +2,7 @@
  * One job in full, in the main area: the whole query, the phase history, a preview of the
  * cached result (read by the server from the cache, no kernel involved) and the provenance.
  */
+import { Signal } from '@lumino/signaling';
 import { Widget } from '@lumino/widgets';
 
 import {
@@ -16,6 +17,7 @@ import {
 import { IJobDetails, IJobRecord, IPreview, JobDeskModel } from './model';
 import { IPanelActions, phaseBadge } from './panel';
 import { estimateText } from './estimatetext';
+import { quickLookSection } from './quicklook';
 
 export class JobDetails extends Widget {
   constructor(
@@ -30,15 +32,55 @@ export class JobDetails extends Widget {
     this.title.label = `Job ${jobId.slice(0, 8)}`;
     this.title.closable = true;
     this.node.tabIndex = -1;
+    // Follow the job as its sidebar row does: the same change feed, reloaded when it moved.
+    model.changed.connect(() => {
+      const row = model.jobs.find(j => j.id === jobId);
+      if (row && row.updated !== this.shownUpdated) {
+        void this.load(true);
+      }
+    }, this);
+    model.feedChanged.connect(() => {
+      if (!model.jobs.some(j => j.id === jobId)) {
+        void this.load(true);
+      }
+    }, this);
     void this.load();
   }
 
-  async load(): Promise<void> {
-    this.node.replaceChildren(para('jd-muted', 'Loading…'));
+  dispose(): void {
+    Signal.clearData(this);
+    super.dispose();
+  }
+
+  /** Draw the job; `quiet` (a live update) keeps the page as it is unless the job moved. */
+  async load(quiet = false): Promise<void> {
+    if (this.loadingNow) {
+      this.again = true;
+      return;
+    }
+    this.loadingNow = true;
+    try {
+      await this.draw(quiet);
+    } finally {
+      this.loadingNow = false;
+    }
+    if (this.again) {
+      this.again = false;
+      void this.load(true);
+    }
+  }
+
+  private async draw(quiet: boolean): Promise<void> {
+    if (!quiet) {
+      this.node.replaceChildren(para('jd-muted', 'Loading…'));
+    }
     let details: IJobDetails;
     try {
       details = await this.model.details(this.jobId);
     } catch (err) {
+      if (quiet) {
+        return; // keep what is shown; the next change tries again
+      }
       // Show what the list already knows, with the reason the rest is missing.
       const problem = para('jd-error', `Details unavailable: ${(err as Error).message}`);
       this.node.replaceChildren(problem);
@@ -53,6 +95,12 @@ export class JobDetails extends Widget {
       return;
     }
     const job = details.job;
+    if (quiet && job.updated === this.shownUpdated) {
+      return;
+    }
+    this.shownUpdated = job.updated ?? null;
+    const scroll = this.node.scrollTop;
+    const opened = this.node.querySelector('details')?.open ?? false;
     this.title.label = job.label || firstLine(job.adql).slice(0, 30) || this.title.label;
     this.node.replaceChildren(
       this.header(job),
@@ -67,6 +115,12 @@ export class JobDetails extends Widget {
         preview => holder.replaceChildren(heading('Preview'), previewTable(preview)),
         err => holder.replaceChildren(heading('Preview'), para('jd-error', err.message))
       );
+      // Keep the quick look (and the histogram the user drew) while the result is the same.
+      if (!this.quick || this.quickSha !== job.parquet_sha256) {
+        this.quick = quickLookSection(this.model, this.jobId);
+        this.quickSha = job.parquet_sha256;
+      }
+      this.node.append(this.quick);
     }
     const prov = details.provenance
       ? pre(JSON.stringify(details.provenance, null, 2))
@@ -74,9 +128,17 @@ export class JobDetails extends Widget {
     const block = document.createElement('details');
     const summary = document.createElement('summary');
     summary.textContent = 'Provenance (JSON)';
+    block.open = opened;
     block.append(summary, prov);
     this.node.append(block);
+    this.node.scrollTop = scroll;
   }
+
+  private shownUpdated: number | null = null;
+  private loadingNow = false;
+  private again = false;
+  private quick: HTMLElement | null = null;
+  private quickSha: string | null = null;
 
   private header(job: IJobRecord): HTMLElement {
     const head = document.createElement('div');

@@ -10,6 +10,9 @@ import {
 } from '@jupyterlab/application';
 import { Clipboard, Dialog, MainAreaWidget, Notification, showDialog } from '@jupyterlab/apputils';
 import { INotebookTracker, NotebookActions } from '@jupyterlab/notebook';
+import { ISettingRegistry } from '@jupyterlab/settingregistry';
+
+import { announcementKey, claimAnnouncement } from './announce';
 
 import { JobDetails } from './details';
 import { firstLine, formatDuration, formatRows } from './format';
@@ -20,19 +23,36 @@ import servicesPlugin from './servicesplugin';
 
 const PLUGIN_ID = 'jobdesk-labextension:sidebar';
 
-/** Jobs that ran at least this long raise a notification when they finish (common practice, no source). */
+/** Completed jobs that ran at least this long are announced (common practice, no source);
+ * the user's setting `notifyAfterSeconds` overrides it. */
 const NOTIFY_AFTER_SECONDS = 10;
 
 const plugin: JupyterFrontEndPlugin<void> = {
   id: PLUGIN_ID,
   description: 'A sidebar listing jobdesk query jobs, their phases, results and cache.',
   autoStart: true,
-  optional: [ILayoutRestorer, INotebookTracker],
+  optional: [ILayoutRestorer, INotebookTracker, ISettingRegistry],
   activate: (
     app: JupyterFrontEnd,
     restorer: ILayoutRestorer | null,
-    notebooks: INotebookTracker | null
+    notebooks: INotebookTracker | null,
+    registry: ISettingRegistry | null
   ) => {
+    const prefs = { notifications: true, notifyAfterSeconds: NOTIFY_AFTER_SECONDS };
+    if (registry) {
+      void registry.load(PLUGIN_ID).then(
+        settings => {
+          const read = () => {
+            prefs.notifications = settings.get('notifications').composite !== false;
+            const after = Number(settings.get('notifyAfterSeconds').composite);
+            prefs.notifyAfterSeconds = Number.isFinite(after) ? after : NOTIFY_AFTER_SECONDS;
+          };
+          read();
+          settings.changed.connect(read);
+        },
+        () => undefined // no schema (e.g. an old install): keep the defaults
+      );
+    }
     const model = new JobDeskModel();
     const openDetails = new Map<string, MainAreaWidget<JobDetails>>();
 
@@ -114,21 +134,49 @@ const plugin: JupyterFrontEndPlugin<void> = {
       restorer.add(panel, 'jobdesk-sidebar');
     }
 
-    model.finished.connect((_, job) => {
-      const ran = (job.finished || Date.now() / 1000) - (job.started || job.created);
-      if (ran < NOTIFY_AFTER_SECONDS && job.phase === 'COMPLETED') {
+    // Announce jobs this lab followed when they end (and, later, if their result is cut);
+    // once per browser profile across reloads and tabs (see announce.ts).
+    const followed = new Set<string>();
+    const announce = async (job: IJobRecord): Promise<void> => {
+      if (!prefs.notifications || !(await claimAnnouncement(announcementKey(job)))) {
         return;
       }
+      const ran = (job.finished || Date.now() / 1000) - (job.started || job.created);
       const words = `${title(job)} — ${job.phase.toLowerCase()} after ${formatDuration(ran)}` +
         (job.rows !== null && job.rows !== undefined ? `, ${formatRows(job.rows)}` : '');
-      const options = {
-        autoClose: 8000 as number | false,
-        actions: [{ label: 'Details', callback: () => actions.openDetails(job) }]
-      };
+      const buttons: Array<{ label: string; callback: () => void; caption?: string }> = [
+        { label: 'Open details', caption: 'Show this job in the main area', callback: () => actions.openDetails(job) }
+      ];
       if (job.phase === 'COMPLETED') {
+        buttons.push({
+          label: 'Insert code',
+          caption: 'Insert Python that loads the result below the active cell',
+          callback: () => void actions.insertSnippet(job)
+        });
+      }
+      const options = { autoClose: 10000 as number | false, actions: buttons };
+      if (job.phase === 'COMPLETED' && job.truncated) {
+        Notification.warning(`Result truncated (not the full answer): ${words}`, options);
+      } else if (job.phase === 'COMPLETED') {
         Notification.success(`Job finished: ${words}`, options);
       } else {
         Notification.warning(`Job ended: ${words}`, options);
+      }
+    };
+    model.finished.connect((_, job) => {
+      followed.add(job.id);
+      const ran = (job.finished || Date.now() / 1000) - (job.started || job.created);
+      if (ran < prefs.notifyAfterSeconds && job.phase === 'COMPLETED' && !job.truncated) {
+        return;
+      }
+      void announce(job);
+    });
+    model.changed.connect(() => {
+      for (const job of model.jobs) {
+        if (followed.has(job.id) && job.phase === 'COMPLETED' && job.truncated) {
+          followed.delete(job.id);
+          void announce(job);
+        }
       }
     });
 

@@ -86,6 +86,33 @@ export interface ICacheSummary {
 export interface IFilter {
   phase: string; // comma-separated phase names, '' for all
   text: string;
+  /** created (newest first), finished, rows, size (largest first): sorted by the server. */
+  sort?: string;
+  /** Only the jobs of this notebook ('' = jobs with no notebook); undefined = all. */
+  notebook?: string;
+  /** Only the jobs of this analysis, where the index records analyses. */
+  analysis?: string;
+}
+
+/** Jobs and cache use of one notebook (or analysis), from `groups?by=`. */
+export interface IGroup {
+  value: string;
+  jobs: number;
+  cached: number;
+  bytes: number;
+  rows: number;
+}
+
+export interface IGroups {
+  by: string;
+  available: boolean;
+  groups: IGroup[];
+}
+
+/** What a quick look can show for one result. */
+export interface IQuickLookInfo {
+  sky: { ra: string; dec: string } | null;
+  numeric: Array<{ name: string; unit?: string | null }>;
 }
 
 /** An error answer of the REST API, with the server's message and hint. */
@@ -119,6 +146,17 @@ export class JobDeskModel {
   get changed(): ISignal<this, void> {
     return this._changed;
   }
+
+  /** The change feed saw the index change (open details reload their job on it). */
+  get feedChanged(): ISignal<this, void> {
+    return this._feedChanged;
+  }
+
+  /** Notebooks (and analyses, when recorded) with their jobs and cache use. */
+  groups: { notebook: IGroups | null; analysis: IGroups | null } = {
+    notebook: null,
+    analysis: null
+  };
 
   /** A watched job reached a terminal phase while the sidebar was open. */
   get finished(): ISignal<this, IJobRecord> {
@@ -167,6 +205,7 @@ export class JobDeskModel {
       this.total = page.total;
       this.error = '';
       this.cache = await this.request<ICacheSummary>('cache').catch(() => this.cache);
+      await this.loadGroups();
     } catch (err) {
       this.error = (err as Error).message;
     } finally {
@@ -197,8 +236,31 @@ export class JobDeskModel {
     }
   }
 
+  /** Jobs and cache use per notebook and per analysis, for the grouping menus. */
+  async loadGroups(): Promise<void> {
+    const query = new URLSearchParams();
+    if (this.filter.phase) {
+      query.set('phase', this.filter.phase);
+    }
+    for (const by of ['notebook', 'analysis'] as const) {
+      query.set('by', by);
+      this.groups[by] = await this.request<IGroups>(`groups?${query}`).catch(
+        () => this.groups[by]
+      );
+    }
+  }
+
   page(offset: number, limit: number): Promise<IJobPage> {
     const query = new URLSearchParams({ limit: String(limit), offset: String(offset) });
+    if (this.filter.sort && this.filter.sort !== 'created') {
+      query.set('sort', this.filter.sort);
+    }
+    if (this.filter.notebook !== undefined) {
+      query.set('notebook', this.filter.notebook);
+    }
+    if (this.filter.analysis !== undefined) {
+      query.set('analysis', this.filter.analysis);
+    }
     if (this.filter.phase) {
       query.set('phase', this.filter.phase);
     }
@@ -214,6 +276,30 @@ export class JobDeskModel {
 
   preview(id: string, rows = 20): Promise<IPreview> {
     return this.request<IPreview>(`jobs/${encodeURIComponent(id)}/preview?rows=${rows}`);
+  }
+
+  quickLookInfo(id: string): Promise<IQuickLookInfo> {
+    return this.request<IQuickLookInfo>(`jobs/${encodeURIComponent(id)}/quicklook`);
+  }
+
+  /** A quick-look image as SVG text (drawn by the server from the cached result). */
+  async quickLook(id: string, kind: 'sky' | 'histogram', column = ''): Promise<string> {
+    const query = kind === 'histogram' ? `?column=${encodeURIComponent(column)}` : '';
+    const url = URLExt.join(
+      this.settings.baseUrl, 'jobdesk', 'api', 'jobs', encodeURIComponent(id), 'quicklook', kind
+    ) + query;
+    const response = await ServerConnection.makeRequest(url, { signal: this._abort.signal }, this.settings);
+    const text = await response.text();
+    if (!response.ok) {
+      let message = text;
+      try {
+        message = JSON.parse(text).message || text;
+      } catch {
+        // not JSON: keep the text
+      }
+      throw new DeskRequestError(message || `HTTP ${response.status}`, response.status);
+    }
+    return text;
   }
 
   async snippet(id: string): Promise<string> {
@@ -279,6 +365,7 @@ export class JobDeskModel {
           `changes?since=${encodeURIComponent(token)}`
         );
         if (answer.changed && token !== '') {
+          this._feedChanged.emit();
           await this.refresh();
           await this.watchActive(true);
         }
@@ -327,6 +414,7 @@ export class JobDeskModel {
 
   private _changed = new Signal<this, void>(this);
   private _finished = new Signal<this, IJobRecord>(this);
+  private _feedChanged = new Signal<this, void>(this);
   private _active = new Map<string, IJobRecord>();
   private _abort = new AbortController();
   private _disposed = false;

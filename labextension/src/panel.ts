@@ -21,6 +21,7 @@ import {
 } from './format';
 import { ICacheSummary, IJobRecord, JobDeskModel } from './model';
 import { rowsOrEstimate } from './estimatetext';
+import { OrderBar } from './order';
 
 export interface IPanelActions {
   openDetails(job: IJobRecord): void;
@@ -39,7 +40,7 @@ export class JobDeskPanel extends Widget {
     this.id = 'jobdesk-sidebar';
     this.addClass('jd-panel');
     this.title.caption = 'Job desk: remote query jobs';
-    this.node.append(this.buildBar(), this.summary, this.list, this.footer);
+    this.node.append(this.buildBar(), new OrderBar(model).node, this.summary, this.list, this.footer);
     this.list.className = 'jd-list';
     this.list.setAttribute('role', 'list');
     this.list.setAttribute('aria-label', 'Jobs');
@@ -67,7 +68,7 @@ export class JobDeskPanel extends Widget {
     if (!model.jobs.length && !model.loading) {
       const empty = document.createElement('div');
       empty.className = 'jd-empty';
-      empty.textContent = model.filter.phase || model.filter.text
+      empty.textContent = model.filter.phase || model.filter.text || model.filter.notebook !== undefined
         ? 'No job matches this filter.'
         : 'No jobs yet. Submit a query with jobdesk.Desk().submit(...) in a notebook.';
       this.list.append(empty);

@@ -25,6 +25,15 @@ def free_port() -> int:
         return sock.getsockname()[1]
 
 
+def lab_bundle() -> Path | None:
+    """The built lab extension next to the imported ``jobdesk`` package (``npm run build`` in
+    labextension/ writes it there), or None when this checkout has not built one."""
+    import jobdesk
+
+    bundle = Path(jobdesk.__file__).resolve().parent / "labextension"
+    return bundle if (bundle / "package.json").exists() else None
+
+
 class RunningJupyter:
     """``with RunningJupyter(tmp, desk_root) as jp: requests.get(jp.url("jobdesk/api/jobs"), ...)``"""
 
@@ -57,6 +66,17 @@ class RunningJupyter:
         env = dict(os.environ)
         for name in ("config", "runtime", "ipython"):
             (self.workdir / name).mkdir(parents=True, exist_ok=True)
+        data = self.workdir / "data"
+        bundle = lab_bundle()
+        if self.app == "lab" and bundle is not None:
+            # The lab loads THIS checkout's bundle, not the one pip installed into the
+            # environment: Jupyter searches JUPYTER_DATA_DIR/labextensions first and the first
+            # copy of a package name wins. The installed one is left untouched.
+            link = data / "labextensions" / "jobdesk-labextension"
+            link.parent.mkdir(parents=True, exist_ok=True)
+            if not link.exists():
+                link.symlink_to(bundle, target_is_directory=True)
+            env["JUPYTER_DATA_DIR"] = str(data)
         env.update(JOBDESK_HOME=str(self.desk_root),
                    JUPYTER_CONFIG_DIR=str(self.workdir / "config"),
                    JUPYTER_RUNTIME_DIR=str(self.workdir / "runtime"),
