@@ -64,7 +64,7 @@ const plugin: JupyterFrontEndPlugin<void> = {
         if (!widget || widget.isDisposed) {
           const content = new JobDetails(model, actions, job.id, job);
           widget = new MainAreaWidget({ content });
-          widget.id = content.id;
+          widget.id = `${content.id}-area`; // ids are unique in a page (the content keeps its own)
           widget.title.icon = jobdeskIcon;
           widget.title.label = content.title.label;
           content.title.changed.connect(() => (widget!.title.label = content.title.label));

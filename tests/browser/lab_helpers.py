@@ -15,7 +15,9 @@ def start_lab(work: Path, desk_root: Path, **settings) -> RunningJupyter:
     """A JupyterLab with the announcements pop-up disabled and a fast poller."""
     labconfig = work / "config" / "labconfig"
     labconfig.mkdir(parents=True, exist_ok=True)
-    (labconfig / "page_config.json").write_text(json.dumps({"disabledExtensions": {
+    # exposeAppInBrowser: tests switch the theme through the app's own command.
+    (labconfig / "page_config.json").write_text(json.dumps({"exposeAppInBrowser": True,
+                                                            "disabledExtensions": {
         "@jupyterlab/apputils-extension:announcements": True}}))
     return RunningJupyter(work, desk_root, app="lab",
                           jobdesk_settings={"poll_interval": 0.5, **settings})
