@@ -20,7 +20,8 @@ import platformdirs
 
 from jobdesk import checks as query_checks
 from jobdesk import estimate as cost
-from jobdesk import analyses, formats, keys, metadata, phases, provenance, results, voparquet
+from jobdesk import (analyses, formats, keys, metadata, phases, provenance, results, transfer,
+                     voparquet)
 from jobdesk import uploads as upload_tables
 from jobdesk.errors import (
     BadServiceURL, CacheCorrupt, GroupCacheWarning, JobAborted, JobdeskError, JobFailed, JobLost,
@@ -32,6 +33,7 @@ from jobdesk.groups import GroupCaches
 from jobdesk.index import Index, this_process
 from jobdesk.remote import Remote
 from jobdesk.store import Store, stat_stamp
+from jobdesk.transfer import FetchMeter
 
 DEFAULT_RUNNING_LIMIT = 4     # jobs per service at once; common practice, no source
 HELD_RETRY = 5.0              # seconds between PHASE=RUN to a HELD job; common practice, no source
@@ -750,19 +752,20 @@ class Desk:
         url = status.result_url or record["job_url"].rstrip("/") + "/results/result"
         raw = self.store.temp(".vot")
         table = self.store.temp(".parquet")
+        meter = FetchMeter(lambda fetch: self.index.update(job_id, fetch=fetch))
         try:
-            total: list[int | None] = [None]
-            got = remote.download(
-                url, raw, on_size=lambda size: total.__setitem__(0, size),
-                on_progress=None if on_transfer is None else (
-                    lambda done: on_transfer(done, total[0])))
+            def progress(done: int) -> None:
+                meter.bytes(done)
+                if on_transfer is not None:
+                    on_transfer(done, meter.state["total"])
+            got = remote.download(url, raw, on_size=meter.length, on_progress=progress)
             meta = {"jobdesk_key": record["key"], "service": record["service"],
                     "adql": record["adql"], "job_url": record["job_url"]}
             fmt = record.get("result_fmt") or record.get("fmt") or formats.DEFAULT
             if formats.is_csv(fmt):
                 summary = results.csv_to_parquet(raw, table, metadata=meta)
             else:
-                summary = _cache_copy(raw, table, meta, got.content_type)
+                summary = _cache_copy(raw, table, meta, got.content_type, on_rows=meter.rows)
             if summary.status == "ERROR":
                 self.index.update(job_id, phase=phases.ERROR, finished=time.time(),
                                   error=summary.message or "the result document says ERROR")
@@ -781,6 +784,8 @@ class Desk:
         finally:
             raw.unlink(missing_ok=True)
             table.unlink(missing_ok=True)
+            if meter.state["bytes"]:
+                meter.done()
         truncated = summary.status == "OVERFLOW"
         server = {k: v for k, v in summary.infos.items()
                   if k in ("server_software", "publisher", "request_date", "citation")}
@@ -874,7 +879,13 @@ class Job:
             while True:
                 record = self.record
                 if display is not None:
-                    display.update(record["phase"], time.monotonic() - t0, record.get("rows"))
+                    # Another process may be fetching: show its figures from the index too.
+                    fetch = record.get("fetch") or {}
+                    if fetch.get("stage") == "download":
+                        display.transfer(fetch.get("bytes") or 0, fetch.get("total"))
+                    display.update(record["phase"], time.monotonic() - t0, record.get("rows"),
+                                   transfer.describe(fetch) if fetch.get("stage") == "convert"
+                                   else "")
                     if display.cancelled and record["phase"] not in phases.TERMINAL:
                         self.desk.abort(self.id)
                         continue
@@ -1081,7 +1092,8 @@ def _transient(exc: JobdeskError) -> bool:
         isinstance(exc, ServiceRefused) and status is not None and (status == 429 or status >= 500))
 
 
-def _cache_copy(raw: Path, table: Path, meta: dict, content_type: str | None):
+def _cache_copy(raw: Path, table: Path, meta: dict, content_type: str | None, *,
+                on_rows=None):
     """The cache's Parquet copy of a result, by what the bytes are (the job may have been
     joined from another process, which chose the format); a Content-Type that says otherwise
     is refused rather than guessed at."""
@@ -1090,7 +1102,8 @@ def _cache_copy(raw: Path, table: Path, meta: dict, content_type: str | None):
         if "xml" in (content_type or "").lower():
             raise ServiceResponseInvalid(f"the answer declared {content_type} but holds Parquet")
         return voparquet.to_cache(raw, table, metadata=meta)
-    summary = results.to_parquet(raw, table, metadata=meta, serialization=declared)
+    summary = results.to_parquet(raw, table, metadata=meta, serialization=declared,
+                                 on_rows=on_rows)
     if formats.is_voparquet(content_type) and summary.status != "ERROR":
         raise ServiceResponseInvalid(f"the answer declared {content_type} but holds XML")
     return summary

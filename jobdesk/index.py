@@ -40,12 +40,12 @@ JOB_COLUMNS: dict[str, type] = {
     "result_bytes": int, "result_stat": str, "parquet_sha256": str, "parquet_stat": str,
     "error": str, "notebook": str, "user": str, "host": str, "requests": int, "owner": str,
     "lease_until": float, "layer": str, "warnings": str, "server": str, "estimate": str,
-    "analysis": str, "result_fmt": str,
+    "analysis": str, "result_fmt": str, "fetch": str,
 }
 
 MIGRATIONS: list[Callable[[sqlite_utils.Database], None]] = []
 # added to jobs by a later migration, not by the first
-_LATER_COLUMNS = ("estimate", "analysis", "result_fmt")
+_LATER_COLUMNS = ("estimate", "analysis", "result_fmt", "fetch")
 
 
 def _migration(fn: Callable[[sqlite_utils.Database], None]) -> Callable:
@@ -144,6 +144,13 @@ def _add_result_format(db: sqlite_utils.Database) -> None:
     # (idempotent, as the migration before it: a file may already have the column)
     if "result_fmt" not in {row[1] for row in db.execute("PRAGMA table_info(jobs)").fetchall()}:
         db.execute("ALTER TABLE jobs ADD COLUMN result_fmt TEXT")
+
+
+@_migration
+def _fetch_progress_column(db: sqlite_utils.Database) -> None:
+    # A result being fetched says how far it got (JSON: stage, bytes, total, rows, percent),
+    # so the sidebar and other processes can show it (see jobdesk/transfer.py).
+    db.execute("ALTER TABLE jobs ADD COLUMN fetch TEXT")
 
 
 @_migration
@@ -710,7 +717,7 @@ def _filters(phase, service, text, notebook=None, analysis=None) -> tuple[str, l
     return ("WHERE " + " AND ".join(clauses)) if clauses else "", args
 
 
-_JSON_FIELDS = ("uploads", "warnings", "server", "estimate")
+_JSON_FIELDS = ("uploads", "warnings", "server", "estimate", "fetch")
 
 
 def _encode(record: dict) -> dict:

@@ -18,6 +18,7 @@ import struct
 import xml.parsers.expat
 from dataclasses import asdict, dataclass, field
 from pathlib import Path
+from collections.abc import Callable
 from typing import IO, Any
 
 import defusedxml
@@ -969,6 +970,8 @@ class _ParquetSink:
         self.schema: pa.Schema | None = None
         self.pending: list[pa.RecordBatch] = []
         self.pending_rows = self.pending_bytes = 0
+        self.rows_written = 0
+        self.on_flush: Callable[[int], None] | None = None
 
     def begin(self, fields: list[_Field]) -> None:
         names = [f.name for f in fields]
@@ -998,6 +1001,9 @@ class _ParquetSink:
         if self.pending:
             self.writer.write_table(pa.Table.from_batches(self.pending, schema=self.schema),
                                     row_group_size=self.pending_rows)
+            self.rows_written += self.pending_rows
+            if self.on_flush is not None:
+                self.on_flush(self.rows_written)
         self.pending, self.pending_rows, self.pending_bytes = [], 0, 0
 
     def finish(self, fields: list[_Field], extra: dict[str, str]) -> None:
@@ -1030,13 +1036,15 @@ def scan(votable: Path) -> ResultSummary:
 
 
 def to_parquet(votable: Path, parquet: Path, *, metadata: dict[str, str] | None = None,
-               serialization: str | None = None) -> ResultSummary:
+               serialization: str | None = None,
+               on_rows: Callable[[int, int, int], None] | None = None) -> ResultSummary:
     """Copy a VOTable result to Parquet in bounded memory; returns the scan summary.
 
     The file appears at ``parquet`` only when complete (temp file in the same directory,
     then rename), with ``metadata`` and the summary in its schema metadata. ``serialization``
     ("BINARY2", ...) is what the answer declared (its Content-Type): bytes that differ are
-    refused rather than guessed at.
+    refused rather than guessed at. ``on_rows(rows, read, size)`` hears of each row group
+    written: rows so far, bytes of the VOTable read.
     """
     parquet = Path(parquet)
     tmp = parquet.with_name(f".{parquet.name}.{os.getpid()}.partial")
@@ -1045,6 +1053,9 @@ def to_parquet(votable: Path, parquet: Path, *, metadata: dict[str, str] | None 
     sink = _ParquetSink(tmp, user)
     try:
         with open(votable, "rb") as fh:
+            if on_rows is not None:
+                size = os.fstat(fh.fileno()).st_size
+                sink.on_flush = lambda rows: on_rows(rows, size if fh.closed else fh.tell(), size)
             reader_summary, fields = _read(fh, sink, serialization)
         extra = {SUMMARY_KEY: reader_summary.to_json(),
                  METADATA_KEY: json.dumps(user, sort_keys=True)}

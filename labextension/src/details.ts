@@ -14,6 +14,7 @@ import {
   hostOf,
   phaseFamily
 } from './format';
+import { IFetch, describeFetch } from './fetch';
 import { IJobDetails, IJobRecord, IPreview, JobDeskModel } from './model';
 import { IPanelActions, phaseBadge } from './panel';
 import { estimateText } from './estimatetext';
@@ -173,7 +174,7 @@ export class JobDetails extends Widget {
       ['Size', formatBytes(job.result_bytes)],
       ['Estimate', estimateText(job) || '—'],
       ['MAXREC', job.maxrec === null || job.maxrec === undefined ? 'service default' : String(job.maxrec)],
-      ['Cache', job.parquet_sha256 ? `${job.layer || 'personal'} cache` : 'not cached'],
+      ['Cache', job.parquet_sha256 ? `${job.layer || 'personal'} cache` : job.fetch ? describeFetch(job.fetch as IFetch) : 'not cached'],
       ['Notebook', job.notebook || '—'],
       ['Submitted by', [job.user, job.host].filter(Boolean).join(' on ') || '—'],
       // An abort's reason is a note; an error is an error.

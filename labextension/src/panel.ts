@@ -19,8 +19,10 @@ import {
   plural,
   timeWords
 } from './format';
+import { IFetch, fetchProgress } from './fetch';
 import { ICacheSummary, IJobRecord, JobDeskModel } from './model';
 import { rowsOrEstimate } from './estimatetext';
+import { OrderBar } from './order';
 import { OrderBar } from './order';
 
 export interface IPanelActions {
@@ -174,6 +176,10 @@ export class JobDeskPanel extends Widget {
       text('jd-rows', rowsOrEstimate(job, formatRows(job.rows))),
       text('jd-bytes', formatBytes(job.result_bytes))
     );
+    const fetching = fetchProgress(job.fetch as IFetch | null);
+    if (fetching) {
+      facts.append(fetching);
+    }
     if (job.parquet_sha256) {
       const layer = text('jd-layer', job.layer || 'personal');
       layer.title = `Result cached in the ${job.layer || 'personal'} cache`;

@@ -249,3 +249,33 @@ def test_notifications_once_across_tabs_and_reloads_and_the_setting(lab, context
                             timeout=90_000)
     first.wait_for_timeout(3000)
     assert announced(first, "not announced") + announced(second, "not announced") == 0
+
+
+def test_fetch_progress_shows_in_the_row_and_the_details(lab, context):
+    # The figures a fetching process records (jobdesk/transfer.py), written the way it writes
+    # them: through the index the server reads. The service is invented and never contacted.
+    from jobdesk.index import Index
+
+    index = Index(lab.desk_root / "index.sqlite")
+    job_id = "f0e1d2c3b4a59687"
+    index.insert({"id": job_id, "key": "9" * 64, "service": "http://tap.delta.invalid/tap",
+                  "adql": "SELECT * FROM orrery.visits", "label": "a long download",
+                  "phase": "EXECUTING", "created": time.time(), "layer": "personal"})
+    index.update(job_id, fetch={"stage": "download", "bytes": 12_000_000,
+                                "total": 34_000_000, "rows": None, "percent": 35.3})
+    page = context.new_page()
+    open_sidebar(page, lab)
+    bar = row(page, job_id).locator(".jd-fetch")
+    bar.wait_for(timeout=20_000)
+    assert "downloading 12 MB of 34 MB (35 %)" in bar.inner_text()
+    assert float(bar.locator("progress").get_attribute("value")) == pytest.approx(35.3)
+    row(page, job_id).focus()
+    page.keyboard.press("Enter")
+    facts = page.locator(f"#jobdesk-job-{job_id}.jd-details table.jd-facts")
+    facts.locator("tr", has_text="downloading").wait_for(timeout=20_000)
+    # Conversion follows; the row and the open details follow the index without a reload.
+    index.update(job_id, fetch={"stage": "convert", "bytes": 34_000_000, "total": 34_000_000,
+                                "rows": 147_930, "percent": 80.0})
+    facts.locator("tr", has_text="converting 147,930 rows (80 %)").wait_for(timeout=20_000)
+    assert "converting 147,930 rows" in row(page, job_id).inner_text()
+    index.forget(job_id)

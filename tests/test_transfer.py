@@ -1,0 +1,65 @@
+"""Fetch progress: bytes and rows so far, a percentage when the length is known, recorded in
+the index for the sidebar and handed to the waiting display; real HTTP to the embedded service."""
+
+from __future__ import annotations
+
+import pytest
+
+from jobdesk import Desk, transfer
+from jobdesk import desk as desk_module
+from jobdesk.localtap import serve
+from jobdesk.progress import Progress
+from jobdesk.transfer import FetchMeter
+
+
+def test_meter_throttles_index_writes_but_tells_the_listener_everything():
+    writes, heard, now = [], [], [0.0]
+    meter = FetchMeter(writes.append, heard.append, every=0.5, clock=lambda: now[0])
+    meter.length(1000)
+    for step in range(10):
+        now[0] = step * 0.1
+        meter.bytes((step + 1) * 100)
+    assert [h["bytes"] for h in heard] == [100 * k for k in range(1, 11)]
+    assert heard[-1]["percent"] == 100.0
+    assert len(writes) == 2  # t=0 and t=0.5
+    meter.rows(500, read=250, size=1000)
+    assert heard[-1] == {"stage": "convert", "bytes": 1000, "total": 1000, "rows": 500,
+                         "percent": 25.0}
+    meter.done()
+    assert writes[-1] is None
+    assert transfer.describe(heard[-1]) == "converting 500 rows (25 %)"
+    assert transfer.describe({"stage": "download", "bytes": 2_000_000, "total": None,
+                              "percent": None}) == "downloading 2.0 MB"
+
+
+class Recorder(Progress):
+    """Keeps every note the wait shows (the card and the line show the same words)."""
+
+    seen: list[str] = []
+
+    def _show(self, phase_changed: bool) -> None:
+        Recorder.seen.append(self.note)
+
+
+@pytest.fixture(scope="module")
+def tap(tmp_path_factory):
+    with serve(state=tmp_path_factory.mktemp("tap"), rows=60_000, exec_delay=0.2) as service:
+        yield service
+
+
+def test_wait_shows_download_and_conversion_progress(tap, tmp_path, monkeypatch):
+    monkeypatch.setattr(desk_module, "_progress", lambda title, job_id=None: Recorder(title))
+    Recorder.seen = []
+    desk = Desk(tmp_path / "desk", wait_window=2)
+    job = desk.submit(tap.url, "SELECT orrery_id, ra, dec, mag_lime, mag_rose FROM "
+                      "orrery.sources").wait(timeout=120)
+    notes = [n for n in Recorder.seen if n]
+    downloads = [n for n in notes if n.startswith("downloading")]
+    assert downloads, notes
+    # The embedded service sends Content-Length (RFC 9110 §8.6), so a percentage shows.
+    assert downloads[-1].endswith("(100 %)"), downloads[-1]
+    total_mb = f"{job.record['result_bytes'] / 1e6:.1f} MB"
+    assert f"of {total_mb}" in downloads[-1]
+    assert any(n.startswith("converting") and "rows" in n for n in notes), notes
+    assert job.record["fetch"] is None  # nothing in flight once the result is cached
+    assert job.record["rows"] == 60_000
