@@ -30,6 +30,7 @@ CASES = {
     "case8": ("case8_compare", "comparing two large results by key vs reading them"),
     "case9": ("case9_rerun", "re-running an analysis of cache hits"),
     "case10": ("case10_first_fetch", "first fetch by result format, split, vs pyvo"),
+    "case11": ("case11_quicklook", "quick look of a 5,000,000-row result over REST"),
 }
 
 

@@ -81,6 +81,9 @@ def _to_degrees(unit: str | None) -> float:
     """Factor from the column's unit to degrees (no unit: degrees, the VOTable habit)."""
     if not unit:
         return 1.0
+    plain = {"deg": 1.0, "degree": 1.0, "degrees": 1.0, "rad": 180.0 / math.pi}
+    if unit.strip().lower() in plain:  # the usual ones, without importing astropy.units
+        return plain[unit.strip().lower()]
     from jobdesk.results import _unit
 
     try:
@@ -108,10 +111,21 @@ def _batches(parquet: Path, names: list[str]):
 
 
 def _bin_index(values: np.ndarray, edges: np.ndarray) -> np.ndarray:
-    """Bin numbers with ``numpy.histogram``'s rule; -1 outside the edges."""
-    idx = np.searchsorted(edges, values, side="right") - 1
-    idx[values == edges[-1]] = len(edges) - 2
-    idx[(values < edges[0]) | (values > edges[-1]) | ~np.isfinite(values)] = -1
+    """Bin numbers with ``numpy.histogram``'s rule for equal bins; -1 outside the edges.
+
+    As numpy does: an index by arithmetic, then moved by one where rounding put a value on the
+    wrong side of its bin's edges (cheaper than a binary search over the edges)."""
+    n = len(edges) - 1
+    lo, hi = edges[0], edges[-1]
+    inside = (values >= lo) & (values <= hi)  # False for NaN
+    with np.errstate(invalid="ignore"):
+        idx = np.where(inside, (values - lo) * (n / (hi - lo)), -1).astype(np.intp)
+    np.clip(idx, -1, n - 1, out=idx)
+    ok = idx >= 0
+    safe = np.where(ok, idx, 0)
+    idx[ok & (values < edges[safe])] -= 1
+    idx[ok & (values >= edges[safe + 1]) & (safe != n - 1)] += 1
+    idx[~inside] = -1
     return idx
 
 
@@ -179,6 +193,25 @@ def histogram(parquet: Path, column: str, *, bins: int = HIST_BINS,
     return Histogram(described[column], edges, counts, rows, missing)
 
 
+def _stats_span(parquet: Path, column: str) -> float | None:
+    """max - min of a column from the row groups' statistics; None when any is missing."""
+    meta = pq.ParquetFile(parquet).metadata
+    try:
+        at = meta.schema.to_arrow_schema().get_field_index(column)
+        lows, highs = [], []
+        for g in range(meta.num_row_groups):
+            st = meta.row_group(g).column(at).statistics
+            if st is None or not st.has_min_max:
+                return None
+            lows.append(float(st.min))
+            highs.append(float(st.max))
+    except (ValueError, TypeError, IndexError):
+        return None
+    if not lows or not all(math.isfinite(v) for v in lows + highs):
+        return None
+    return max(highs) - min(lows)
+
+
 def hammer_aitoff(ra_deg: np.ndarray, dec_deg: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Hammer-Aitoff (equal-area) plane coordinates, centred on RA 180 deg, x in
     [-2 sqrt 2, 2 sqrt 2] growing with RA, y in [-sqrt 2, sqrt 2]."""
@@ -207,11 +240,16 @@ def sky(parquet: Path, *, columns: list[dict] | None = None,
     ra_f, dec_f = _to_degrees(ra_col.get("unit")), _to_degrees(dec_col.get("unit"))
     names = [ra_col["name"], dec_col["name"]]
 
-    # Pass 1: extents, on RA as given and on RA shifted to (-180, 180] (a region across RA 0).
+    # The Parquet footer's per-row-group min/max of Dec may already say "the whole sky".
+    span = _stats_span(parquet, dec_col["name"])
+    if projection is None and span is not None and span * dec_f > ALL_SKY_DEC_SPAN:
+        projection = "hammer-aitoff"
+    # Pass 1 (not needed for the whole sky): extents, on RA as given and on RA shifted to
+    # (-180, 180] (a region across RA 0).
     lo = np.array([math.inf] * 3)
     hi = -lo
     rows = missing = 0
-    for ra, dec in _batches(parquet, names):
+    for ra, dec in ([] if projection == "hammer-aitoff" else _batches(parquet, names)):
         ra, dec = np.mod(ra * ra_f, 360.0), dec * dec_f
         good = np.isfinite(ra) & np.isfinite(dec)
         rows += len(ra)
@@ -231,7 +269,10 @@ def sky(parquet: Path, *, columns: list[dict] | None = None,
         counts = np.zeros(SKY_WIDTH * SKY_HEIGHT, dtype=np.int64)
         x_edges = np.linspace(-X_MAX, X_MAX, SKY_WIDTH + 1)
         y_edges = np.linspace(-Y_MAX, Y_MAX, SKY_HEIGHT + 1)
+        rows = missing = 0
         for ra, dec in _batches(parquet, names):
+            rows += len(ra)
+            missing += int((~(np.isfinite(ra) & np.isfinite(dec))).sum())
             x, y = hammer_aitoff(ra * ra_f, dec * dec_f)
             col = SKY_WIDTH - 1 - _bin_index(x, x_edges)  # RA grows to the left
             row = SKY_HEIGHT - 1 - _bin_index(y, y_edges)  # north at the top
