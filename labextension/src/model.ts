@@ -243,6 +243,9 @@ export class JobDeskModel {
       query.set('phase', this.filter.phase);
     }
     for (const by of ['notebook', 'analysis'] as const) {
+      if (this.groups[by] && !this.groups[by]!.available) {
+        continue; // this index records no analyses: do not ask on every refresh
+      }
       query.set('by', by);
       this.groups[by] = await this.request<IGroups>(`groups?${query}`).catch(
         () => this.groups[by]

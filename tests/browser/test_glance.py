@@ -177,8 +177,8 @@ def test_quick_look_live_details_order_and_accessibility(lab, context, taps, tmp
     page.evaluate("() => document.getElementById('jd-bad-img').remove()")
     assert axe(page, "#jobdesk-sidebar") == []
     assert axe(page, f"#jobdesk-job-{sky.id}") == []
-    shoot(page, "#jobdesk-sidebar", "sidebar.png", tmp_path)
-    shoot(page, f"#jobdesk-job-{sky.id} .jd-quicklook", "quicklook.png", tmp_path)
+    shoot(page, "#jobdesk-sidebar", "sidebar-light.png", tmp_path)
+    shoot(page, f"#jobdesk-job-{sky.id} .jd-quicklook", "quicklook-light.png", tmp_path)
     set_theme(page, "JupyterLab Dark")
     assert axe(page, "#jobdesk-sidebar") == []
     assert axe(page, f"#jobdesk-job-{sky.id}") == []
@@ -188,7 +188,8 @@ def test_quick_look_live_details_order_and_accessibility(lab, context, taps, tmp
 
     # Live details: opened while the job runs, they fill in as the row does, with no reload.
     monkeypatch.delenv("JPY_SESSION_NAME")
-    running = desk.submit(slowish.url, SMALL + " -- live", label="followed live")
+    running = desk.submit(slowish.url, SMALL.replace("TOP 5", "TOP 4"),
+                          label="followed live")
     row(page, running.id).wait_for(timeout=20_000)
     row(page, running.id).focus()
     page.keyboard.press("Enter")
@@ -199,7 +200,7 @@ def test_quick_look_live_details_order_and_accessibility(lab, context, taps, tmp
     page.wait_for_selector(f'.jd-row[data-job-id="{running.id}"][data-phase="COMPLETED"]',
                            timeout=90_000)
     live.locator("table.jd-facts tr", has_text="personal cache").wait_for(timeout=15_000)
-    assert "5 rows" in live.locator("table.jd-facts tr", has_text="Rows").inner_text()
+    assert "4 rows" in live.locator("table.jd-facts tr", has_text="Rows").inner_text()
 
 
 def test_notifications_once_across_tabs_and_reloads_and_the_setting(lab, context, taps):
@@ -210,7 +211,7 @@ def test_notifications_once_across_tabs_and_reloads_and_the_setting(lab, context
         open_sidebar(page, lab)
         page.evaluate(WATCH_TOASTS)
     desk = Desk(lab.desk_root, wait_window=2)
-    job = desk.submit(slowish.url, SMALL + " -- announce", label="announce me once")
+    job = desk.submit(slowish.url, SMALL.replace("TOP 5", "TOP 3"), label="announce me once")
     for page in (first, second):
         row(page, job.id).wait_for(timeout=20_000)
     for page in (first, second):
@@ -243,7 +244,7 @@ def test_notifications_once_across_tabs_and_reloads_and_the_setting(lab, context
         page.reload()
         open_sidebar(page, lab)
         page.evaluate(WATCH_TOASTS)
-    quiet = desk.submit(slowish.url, SMALL + " -- quiet", label="not announced")
+    quiet = desk.submit(slowish.url, SMALL.replace("TOP 5", "TOP 2"), label="not announced")
     row(first, quiet.id).wait_for(timeout=20_000)
     first.wait_for_selector(f'.jd-row[data-job-id="{quiet.id}"][data-phase="COMPLETED"]',
                             timeout=90_000)
