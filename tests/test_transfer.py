@@ -33,12 +33,12 @@ def test_meter_throttles_index_writes_but_tells_the_listener_everything():
 
 
 class Recorder(Progress):
-    """Keeps every note the wait shows (the card and the line show the same words)."""
+    """Keeps every download figure the wait shows (the card and the line show the same words)."""
 
     seen: list[str] = []
 
-    def _show(self, phase_changed: bool) -> None:
-        Recorder.seen.append(self.note)
+    def _show_transfer(self) -> None:
+        Recorder.seen.append(self.transfer_words())
 
 
 @pytest.fixture(scope="module")
@@ -51,6 +51,15 @@ def test_wait_shows_download_and_conversion_progress(tap, tmp_path, monkeypatch)
     monkeypatch.setattr(desk_module, "_progress", lambda title, job_id=None: Recorder(title))
     Recorder.seen = []
     desk = Desk(tmp_path / "desk", wait_window=2)
+    recorded = []  # what the fetch writes into the index row, for the sidebar and other waits
+    update = desk.index.update
+
+    def spy(job_id, **fields):
+        if "fetch" in fields:
+            recorded.append(fields["fetch"])
+        return update(job_id, **fields)
+
+    monkeypatch.setattr(desk.index, "update", spy)
     job = desk.submit(tap.url, "SELECT orrery_id, ra, dec, mag_lime, mag_rose FROM "
                       "orrery.sources").wait(timeout=120)
     notes = [n for n in Recorder.seen if n]
@@ -60,6 +69,10 @@ def test_wait_shows_download_and_conversion_progress(tap, tmp_path, monkeypatch)
     assert downloads[-1].endswith("(100 %)"), downloads[-1]
     total_mb = f"{job.record['result_bytes'] / 1e6:.1f} MB"
     assert f"of {total_mb}" in downloads[-1]
-    assert any(n.startswith("converting") and "rows" in n for n in notes), notes
+    # The index saw the download and the conversion, then nothing in flight.
+    assert recorded[0]["stage"] == "download" and recorded[0]["total"] == job.record["result_bytes"]
+    converts = [r for r in recorded if r and r["stage"] == "convert"]
+    assert converts and converts[-1]["rows"] == 60_000 and converts[-1]["percent"] == 100.0
+    assert recorded[-1] is None
     assert job.record["fetch"] is None  # nothing in flight once the result is cached
     assert job.record["rows"] == 60_000

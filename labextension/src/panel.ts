@@ -23,7 +23,6 @@ import { IFetch, fetchProgress } from './fetch';
 import { ICacheSummary, IJobRecord, JobDeskModel } from './model';
 import { rowsOrEstimate } from './estimatetext';
 import { OrderBar } from './order';
-import { OrderBar } from './order';
 
 export interface IPanelActions {
   openDetails(job: IJobRecord): void;
