@@ -400,8 +400,12 @@ export class JobDeskModel {
         if (now.has(id)) {
           continue;
         }
+        // The list may predate the job's end (it left the active set between the two
+        // requests): then ask for the job itself.
         const shown = this.jobs.find(j => j.id === id);
-        const record = shown ?? (await this.details(id).then(d => d.job, () => null));
+        const record = shown && TERMINAL.has(shown.phase)
+          ? shown
+          : await this.details(id).then(d => d.job, () => null);
         if (record && TERMINAL.has(record.phase)) {
           this._finished.emit(record);
         }

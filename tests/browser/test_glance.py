@@ -238,6 +238,22 @@ def test_notifications_once_across_tabs_and_reloads_and_the_setting(lab, context
     shown.wait_for_timeout(4000)
     assert announced(shown, "announce me once") == 0
 
+    # A truncated result is announced even when short completed jobs pass quietly.
+    set_prefs(lab, notifications=True, notifyAfterSeconds=3600)
+    shown.reload()
+    open_sidebar(shown, lab)
+    shown.evaluate(WATCH_TOASTS)
+    cut = desk.submit(slowish.url, SMALL.replace("TOP 5", "TOP 6"), maxrec=2,
+                      label="cut at two rows")
+    shown.wait_for_selector(f'.jd-row[data-job-id="{cut.id}"][data-phase="COMPLETED"]',
+                            timeout=90_000)
+    deadline = time.monotonic() + 20
+    while time.monotonic() < deadline and not announced(shown, "cut at two rows"):
+        shown.wait_for_timeout(250)
+    assert desk.job(cut.id).record["truncated"] == 1
+    words = shown.evaluate("() => window.__jdToasts.join(' | ')")
+    assert "Result truncated (not the full answer): cut at two rows" in words, words
+
     # The setting turns them off.
     set_prefs(lab, notifications=False, notifyAfterSeconds=0)
     for page in (first, second):
