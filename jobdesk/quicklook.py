@@ -20,7 +20,7 @@ import os
 import struct
 import tempfile
 import zlib
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -165,7 +165,6 @@ class SkyMap:
     ra_edges: np.ndarray | None = None
     dec_edges: np.ndarray | None = None
     ra_offset: float = 0.0  # plain maps of a region across RA 0 are binned on RA - 360 there
-    extra: dict = field(default_factory=dict)
 
 
 def histogram(parquet: Path, column: str, *, bins: int = HIST_BINS,
@@ -372,8 +371,9 @@ def draw_histogram(h: Histogram) -> str:
         if c:
             bh = ph * c / max(peak, 1)
             x = left + pw * k / len(h.counts)
-            body.append(f'<rect x="{x:.2f}" y="{top + ph - bh:.2f}" width="{pw / len(h.counts):.2f}"'
-                        f' height="{bh:.2f}" style="fill:var(--jp-brand-color1,#2c7fb8)"/>')
+            bw = pw / len(h.counts)
+            body.append(f'<rect x="{x:.2f}" y="{top + ph - bh:.2f}" width="{bw:.2f}" '
+                        f'height="{bh:.2f}" style="fill:var(--jp-brand-color1,#2c7fb8)"/>')
     body.append(f'<path d="M{left},{top}V{top + ph}H{left + pw}" fill="none" '
                 f'stroke="currentColor"/>')
     for v in _nice_ticks(lo, hi):

@@ -75,7 +75,10 @@ WATCH_TOASTS = """() => {
     window.__jdToasts = [];
     new MutationObserver(() => {
         for (const m of document.querySelectorAll('.jp-toast-message')) {
-            if (!m.dataset.jdSeen) { m.dataset.jdSeen = '1'; window.__jdToasts.push(m.textContent); }
+            if (!m.dataset.jdSeen) {
+                m.dataset.jdSeen = '1';
+                window.__jdToasts.push(m.textContent);
+            }
         }
     }).observe(document.body, {childList: true, subtree: true});
 }"""
