@@ -44,6 +44,7 @@ CASE_NAMES = {
     "case8": "compare",
     "case9": "rerun",
     "case10": "first-fetch",
+    "case11": "quick-look",
 }
 
 # A comparison word and its opposite: a ratio below 1 is read the other way round, so that
