@@ -61,10 +61,11 @@ class FetchMeter:
         self._write(None)
 
     def _set(self, **fields) -> None:
+        new_stage = fields.get("stage") != self.state["stage"]
         self.state.update(fields)
         if self._listener is not None:
             self._listener(dict(self.state))
         now = self._clock()
-        if now - self._last >= self._every:
+        if new_stage or now - self._last >= self._every:  # a new stage is always recorded
             self._last = now
             self._write(dict(self.state))

@@ -22,7 +22,8 @@ def test_meter_throttles_index_writes_but_tells_the_listener_everything():
     assert [h["bytes"] for h in heard] == [100 * k for k in range(1, 11)]
     assert heard[-1]["percent"] == 100.0
     assert len(writes) == 2  # t=0 and t=0.5
-    meter.rows(500, read=250, size=1000)
+    meter.rows(500, read=250, size=1000)  # a new stage is recorded at once
+    assert len(writes) == 3 and writes[-1]["stage"] == "convert"
     assert heard[-1] == {"stage": "convert", "bytes": 1000, "total": 1000, "rows": 500,
                          "percent": 25.0}
     meter.done()
@@ -41,9 +42,11 @@ class Recorder(Progress):
         Recorder.seen.append(self.transfer_words())
 
 
+# The job runs 2 s on the service, so the wait itself (not the first start-up pass, which may
+# also fetch a job that finished at once) drives the download.
 @pytest.fixture(scope="module")
 def tap(tmp_path_factory):
-    with serve(state=tmp_path_factory.mktemp("tap"), rows=60_000, exec_delay=0.2) as service:
+    with serve(state=tmp_path_factory.mktemp("tap"), rows=60_000, exec_delay=2) as service:
         yield service
 
 
