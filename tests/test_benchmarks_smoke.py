@@ -15,7 +15,7 @@ import pytest
 
 ROOT = Path(__file__).resolve().parent.parent
 CASES = ("case1", "case2", "case3", "case4", "case5", "case6", "case7", "case8",
-         "case9", "case10")
+         "case9", "case10", "case11")
 
 
 @pytest.mark.timeout(600)
