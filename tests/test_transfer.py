@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import pytest
 
-from jobdesk import Desk, transfer
+from jobdesk import Desk, formats, transfer
 from jobdesk import desk as desk_module
 from jobdesk.localtap import serve
 from jobdesk.progress import Progress
@@ -63,8 +63,10 @@ def test_wait_shows_download_and_conversion_progress(tap, tmp_path, monkeypatch)
         return update(job_id, **fields)
 
     monkeypatch.setattr(desk.index, "update", spy)
+    # A VOTable answer (BINARY2), so the cache's Parquet copy is a conversion with rows to count
+    # (a VOParquet answer would only have its footer rewritten).
     job = desk.submit(tap.url, "SELECT orrery_id, ra, dec, mag_lime, mag_rose FROM "
-                      "orrery.sources").wait(timeout=120)
+                      "orrery.sources", fmt=formats.BINARY2).wait(timeout=120)
     notes = [n for n in Recorder.seen if n]
     downloads = [n for n in notes if n.startswith("downloading")]
     assert downloads, notes
