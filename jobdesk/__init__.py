@@ -11,10 +11,11 @@ from jobdesk.groups import Group
 from jobdesk.errors import (
     AnalysisError, AnalysisNotFound, CompareKeyInvalid, RenameInvalid,
     BadServiceURL, CacheCorrupt, ConfigError, ExportRefused, ExportTargetExists, ExportWarning,
-    GroupCacheWarning, IndexBusy, JobAborted, JobdeskError, JobFailed, JobLost,
-    NotRepeatableWarning, PublishRefused, QueryRejected, ResultTruncated, ResultTruncatedWarning,
-    ResultUnavailable, ServiceError, ServiceRefused, ServiceResponseInvalid, ServiceUnreachable,
-    StorageFull, UploadInvalid, WaitTimeout,
+    GroupCacheWarning, IndexBusy, JobAborted, JobdeskError, JobFailed, JobLost, JobNotFound,
+    JobUnreached, NotATapService, NotRepeatableWarning, PublishRefused, QueryEmpty,
+    QueryRejected, ResultTruncated, ResultTruncatedWarning, ResultUnavailable, ServiceError,
+    ServiceRefused, ServiceResponseInvalid, ServiceUnreachable, StorageFull, UploadInvalid,
+    WaitTimeout,
     MetadataUnavailable, MetadataWarning, QueryCheckWarning, SyncTimeout, UnknownTable,
     deprecated_alias as _deprecated_alias,
 )
@@ -25,10 +26,11 @@ __all__ = [
     "AnalysisError", "AnalysisNotFound", "CompareKeyInvalid", "RenameInvalid",
     "BadServiceURL", "CacheCorrupt", "ConfigError", "Desk", "ExportRefused", "ExportTargetExists",
     "ExportWarning", "Group", "GroupCacheWarning", "IndexBusy", "Job", "JobAborted", "JobdeskError",
-    "JobFailed", "JobLost", "NotRepeatableWarning", "PublishRefused", "QueryRejected",
-    "ResultTruncated", "ResultTruncatedWarning", "ResultUnavailable", "ServiceError",
-    "ServiceRefused", "ServiceResponseInvalid", "ServiceUnreachable", "StorageFull",
-    "UploadInvalid", "WaitTimeout", "__version__",
+    "JobFailed", "JobLost", "JobNotFound", "JobUnreached", "NotATapService",
+    "NotRepeatableWarning", "PublishRefused", "QueryEmpty", "QueryRejected", "ResultTruncated",
+    "ResultTruncatedWarning", "ResultUnavailable", "ServiceError", "ServiceRefused",
+    "ServiceResponseInvalid", "ServiceUnreachable", "StorageFull", "UploadInvalid",
+    "WaitTimeout", "__version__",
     "MetadataUnavailable", "MetadataWarning", "QueryCheckWarning", "SyncTimeout", "UnknownTable",
 ]
 

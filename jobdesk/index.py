@@ -41,11 +41,14 @@ JOB_COLUMNS: dict[str, type] = {
     "error": str, "notebook": str, "user": str, "host": str, "requests": int, "owner": str,
     "lease_until": float, "layer": str, "warnings": str, "server": str, "estimate": str,
     "analysis": str, "result_fmt": str,
+    "unreachable_since": float, "last_error": str, "error_detail": str, "next_try": float,
+    "send_tries": int,
 }
 
 MIGRATIONS: list[Callable[[sqlite_utils.Database], None]] = []
 # added to jobs by a later migration, not by the first
-_LATER_COLUMNS = ("estimate", "analysis", "result_fmt")
+_LATER_COLUMNS = ("estimate", "analysis", "result_fmt", "unreachable_since", "last_error",
+                  "error_detail", "next_try", "send_tries")
 
 
 def _migration(fn: Callable[[sqlite_utils.Database], None]) -> Callable:
@@ -144,6 +147,18 @@ def _add_result_format(db: sqlite_utils.Database) -> None:
     # (idempotent, as the migration before it: a file may already have the column)
     if "result_fmt" not in {row[1] for row in db.execute("PRAGMA table_info(jobs)").fetchall()}:
         db.execute("ALTER TABLE jobs ADD COLUMN result_fmt TEXT")
+
+
+@_migration
+def _unreachable_state(db: sqlite_utils.Database) -> None:
+    # "The service is unreachable, retrying": since when, the last error in our words and the
+    # raw text under it, when the next try is due, and how many times creating the job failed.
+    # (idempotent, as the migrations before it: a file may already have a column)
+    have = {row[1] for row in db.execute("PRAGMA table_info(jobs)").fetchall()}
+    for name, kind in (("unreachable_since", "FLOAT"), ("last_error", "TEXT"),
+                       ("error_detail", "TEXT"), ("next_try", "FLOAT"), ("send_tries", "INTEGER")):
+        if name not in have:
+            db.execute(f"ALTER TABLE jobs ADD COLUMN {name} {kind}")
 
 
 SCHEMA_VERSION = len(MIGRATIONS)
