@@ -239,6 +239,12 @@ class Desk:
         self.job(job_id)  # JobNotFound for an unknown id
         return self.index.forget(job_id)
 
+    def set_label(self, job_id: str, label: str | None) -> "Job":
+        """Give a record a label (None clears it); the label is for people, not in the key."""
+        self.job(job_id)
+        self.index.update(job_id, label=label)
+        return self.job(job_id)
+
     def resend(self, job_id: str) -> "Job":
         """Send a record's query again as a new job (same query, service, MAXREC, uploads and
         label): the next step after ERROR, ABORTED, LOST or UNREACHED. A run of the same query
