@@ -48,7 +48,8 @@ class ServiceError(JobdeskError):
 class ServiceUnreachable(ServiceError):
     """No answer: connection refused or reset, DNS failure, or timeouts, after every retry."""
 
-    hint = "check the service URL and your network; the job record is kept, so re-run the same call later"
+    hint = ("check the service URL and your network; the job record is kept and wait() tries "
+            "again, saying when")
 
 
 class ServiceRefused(ServiceError):
@@ -159,7 +160,8 @@ class UploadInvalid(JobdeskError):
 class JobFailed(JobdeskError):
     """The job ended in ERROR or ABORTED; ``summary`` holds the UWS errorSummary message."""
 
-    hint = "read the service's message; resubmit with refresh=True once the cause is fixed"
+    hint = ("read the service's message; once the cause is fixed send it again: "
+            "desk.resend(ID) or `jobdesk resend ID` (same query, new job)")
 
     def __init__(self, message: str, *, phase: str = "ERROR", summary: str | None = None, **kw):
         super().__init__(message, **kw)
@@ -170,13 +172,14 @@ class JobFailed(JobdeskError):
 class JobAborted(JobFailed):
     """The job was aborted (by you, a colleague or the service)."""
 
-    hint = "submit again with refresh=True to run it anew"
+    hint = "send it again to run it anew: desk.resend(ID) or `jobdesk resend ID`"
 
 
 class JobLost(JobdeskError):
     """The service no longer knows the job (destroyed or expired) and no result was saved."""
 
-    hint = "resubmit with refresh=True; jobdesk keeps the old record for reference"
+    hint = ("send it again: desk.resend(ID) or `jobdesk resend ID`; the old record stays "
+            "for reference")
 
 
 class JobUnreached(ServiceUnreachable):
@@ -284,7 +287,8 @@ class ExportTargetExists(ExportRefused):
 class StorageFull(JobdeskError):
     """The disk holding the cache is full or over quota; nothing half-written was kept."""
 
-    hint = "free space (jobdesk prune) or point JOBDESK_HOME at a larger disk, then wait() again"
+    hint = ("free space (desk.prune(dry_run=False)) or point JOBDESK_HOME at a larger disk, "
+            "then wait() again")
 
 
 class IndexBusy(JobdeskError):
@@ -295,6 +299,8 @@ class IndexBusy(JobdeskError):
 
 class ConfigError(JobdeskError):
     """A jobdesk setting is invalid."""
+
+    hint = "fix the setting the message names"
 
 
 # --- mapping the libraries' exceptions to ours -------------------------------------------------
