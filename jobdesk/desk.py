@@ -226,8 +226,13 @@ class Desk:
             return Job(self, job_id, record)
         if record.get("job_url"):
             remote = self._remote(record["service"])
+            # Said first, so a process driving the job reads the abort as the user's own.
+            self.index.update(job_id, error=USER_ABORT)
             try:
                 remote.abort(record["job_url"])
+            except BaseException:
+                self.index.update(job_id, error=record.get("error"))
+                raise
             finally:
                 self.index.update(job_id, requests_add=remote.requests)
         self.index.update(job_id, phase=phases.ABORTED, finished=time.time(),
@@ -775,7 +780,10 @@ class Desk:
                         and self._may_fall_back(record, fmt, message, again=True)):
                     self.index.update(job_id, phase=phases.ERROR, error=message,
                                       finished=time.time())
-            elif status.phase in (phases.ABORTED, phases.ARCHIVED):
+            elif status.phase in (phases.ABORTED, phases.ARCHIVED) and not (
+                    status.phase == phases.ABORTED
+                    and (self.index.get(job_id) or {}).get("error") == USER_ABORT):
+                # (an abort from this desk has already said so, in its own words)
                 self.index.update(job_id, phase=status.phase, finished=time.time(),
                                   error=status.error_summary or f"the job is {status.phase}")
         except JobLost as exc:
