@@ -127,6 +127,9 @@ def run(root=None, rows: int = 20000) -> int:
         where = f"--root {desk.root} " if throwaway else ""
         print(f"\n   More: `jobdesk {where}list`, `jobdesk {where}show <id>`,"
               f"\n   `jobdesk {where}export <id> out.fits`; the desk stays at {desk.root}.")
+        from jobdesk.server import SIDEBAR_MISSING, sidebar_built
+        if not sidebar_built():
+            print(f"\n   Note: {SIDEBAR_MISSING}")
     finally:
         tap.stop()
     tap = localtap.spawn(state=state, rows=rows)   # up again (the same catalogue, re-used)
