@@ -127,6 +127,10 @@ def run(root=None, rows: int = 20000) -> int:
         where = f"--root {desk.root} " if throwaway else ""
         print(f"\n   More: `jobdesk {where}list`, `jobdesk {where}show <id>`,"
               f"\n   `jobdesk {where}export <id> out.fits`; the desk stays at {desk.root}.")
+        if throwaway:
+            from jobdesk.desk import default_root
+            print(f"   To see the demo's jobs in the JupyterLab sidebar, run it in your desk:"
+                  f"\n   jobdesk --root {default_root()} demo")
         from jobdesk.server import SIDEBAR_MISSING, sidebar_built
         if not sidebar_built():
             print(f"\n   Note: {SIDEBAR_MISSING}")
