@@ -743,7 +743,12 @@ class Desk:
                 fields["started"] = record["started"] = began    # the service's own startTime
             elif status.phase == phases.EXECUTING and not record.get("started"):
                 fields["started"] = record["started"] = time.time()
-            if status.phase != record["phase"] or "started" in fields:
+            for name, value in (("service_started", status.start_time),
+                                ("service_finished", status.end_time)):
+                when = _unix(value)
+                if when is not None and record.get(name) != when:
+                    fields[name] = record[name] = when
+            if status.phase != record["phase"] or len(fields) > 1:
                 self.index.update(job_id, **fields)
                 record["phase"] = status.phase
             last_run = self._held_run.get(record["job_url"], 0.0)
@@ -1037,6 +1042,13 @@ class Job:
         return WaitTimeout(f"job {self.id} is still {record['phase']} after {timeout:g} s",
                            service=record["service"])
 
+    def failure(self) -> JobdeskError | None:
+        """The error this job ended with (message, hint, detail), or None if it did not fail."""
+        record = self.record
+        if record["phase"] not in FAILED:
+            return None
+        return self._failure(record)
+
     def _failure(self, record: dict) -> JobdeskError:
         message = record.get("error") or f"job {self.id} ended in {record['phase']}"
         service = record["service"]
@@ -1129,6 +1141,17 @@ class Job:
         return (f"from jobdesk import Desk\n\n"
                 f"table = Desk({root}).job({self.id!r}).table({opt})  # {self.title[:60]}\n")
 
+    def query_code(self) -> str:
+        """Python that sends this record's query again, to edit in a notebook first."""
+        r = self.record
+        root = "" if self.desk.root == default_root() else repr(str(self.desk.root))
+        options = "".join(f", {name}={r[name]!r}" for name in ("maxrec", "label")
+                          if r.get(name) is not None)
+        quoted = r["adql"].strip().replace("\\", "\\\\").replace('"""', '\\"\\"\\"')
+        return (f"from jobdesk import Desk\n\n"
+                f"job = Desk({root}).submit(\n    {r['service']!r},\n    \"\"\"\n{quoted}\n\"\"\"{options},\n"
+                f"    refresh=True,\n)\njob.wait()\n")
+
     def preview(self, rows: int = 20) -> dict:
         """The first rows and the column descriptions, JSON-safe, without loading everything."""
         path = self._result_path(allow_truncated=True)
@@ -1152,6 +1175,12 @@ USER_ABORT = "aborted from jobdesk"  # the error text of a job its user aborted
 # Fields that end the "service unreachable" state once the service answers again.
 _REACHED = {"unreachable_since": None, "last_error": None, "error_detail": None,
             "next_try": None, "send_tries": 0}
+
+
+def service_duration(record: dict) -> float | None:
+    """How long the job ran by the service's own clock (startTime to endTime), if it said."""
+    start, end = record.get("service_started"), record.get("service_finished")
+    return None if start is None or end is None else max(0.0, end - start)
 
 
 def unreachable_note(record: dict) -> str:

@@ -21,6 +21,7 @@ Routes::
                                      root directory             {"written": [...]}
     GET    jobs/<id>/preview?rows=N  columns, first rows, totals     (from the cache, no kernel)
     GET    jobs/<id>/snippet         {"snippet": "python source"}
+    GET    jobs/<id>/code            {"code": "python that sends the query again"}
     GET    analyses                  {"analyses": Desk.analyses()}
     GET    analyses/steps?name=NAME  {"name", "jobs": [records in step order], "plans": [...]}
     GET    plans/<id>                a re-run plan: steps, states, failures
@@ -231,8 +232,17 @@ def _details(desk, job_id: str) -> dict:
         provenance, why = job.provenance(), None
     except JobdeskError as exc:  # no result yet, or it failed: the record still shows
         provenance, why = None, exc.message
+    from jobdesk.desk import service_duration, unreachable_note
+    failed = job.failure()
     return {"job": job.record, "history": history, "provenance": provenance,
-            "provenance_missing": why}
+            "provenance_missing": why,
+            # What went wrong in our words and what to do next; the service's own message is
+            # the record's ``error``.
+            "problem": None if failed is None else {
+                "error": type(failed).__name__, "message": failed.message, "hint": failed.hint,
+                "detail": failed.detail or job.record.get("error_detail")},
+            "unreachable": unreachable_note(job.record) or None,
+            "service_seconds": service_duration(job.record)}
 
 
 def _abort(desk, job_id: str) -> dict:
@@ -410,6 +420,13 @@ class CompareHandler(DeskHandler):
         self.reply(await self.call(_compare, old, new, key))
 
 
+class CodeHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def get(self, raw_id: str) -> None:
+        job_id = self.job_id(raw_id)
+        self.reply({"code": await self.call(lambda desk: desk.job(job_id).query_code())})
+
+
 class CacheHandler(DeskHandler):
     @tornado.web.authenticated
     async def get(self) -> None:
@@ -442,6 +459,7 @@ def routes() -> list[tuple[str, type[DeskHandler]]]:
         (one + r"/export", ExportHandler),
         (one + r"/preview", PreviewHandler),
         (one + r"/snippet", SnippetHandler),
+        (one + r"/code", CodeHandler),
         (r"analyses", AnalysesHandler),
         (r"analyses/steps", AnalysisStepsHandler),
         (r"plans/([^/]+)", PlanHandler),
