@@ -397,7 +397,7 @@ def test_cli_lists_shows_and_exports(tap, tmp_path):
     out = tmp_path / "x.parquet"
     assert cli("export", job.id, str(out)).returncode == 0 and out.exists()
     missing = cli("show", "nope")
-    assert missing.returncode == 2 and "no job" in missing.stderr
+    assert missing.returncode == 1 and "no job" in missing.stderr  # JobNotFound: status 1
 
     # Truncation reads "truncated" in the list, as in the API (``Job.truncated``), never "CUT".
     with pytest.warns(ResultTruncatedWarning):
