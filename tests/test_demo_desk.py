@@ -27,9 +27,10 @@ def test_demo_desk_is_throwaway_or_replaced(tmp_path):
     assert not home.exists() or Desk(home).count() == 0, "the demo wrote into the user's desk"
 
     mine = tmp_path / "mine"
-    runs = [demo("--root", str(mine), env=env) for _ in range(2)]
-    assert all(r.returncode == 0 for r in runs), runs[-1].stderr[-2000:]
-    assert f"desk:    {mine}" in runs[0].stdout
-    desk = Desk(mine)
-    labels = sorted(j.record.get("label") or "" for j in desk.jobs(limit=None))
-    assert len(labels) == len(set(labels)) == 4, labels  # one record per demo step, not 8
+    counts = []
+    for _ in range(2):
+        run = demo("--root", str(mine), env=env)
+        assert run.returncode == 0, run.stderr[-2000:]
+        assert f"desk:    {mine}" in run.stdout
+        counts.append(Desk(mine).count())
+    assert counts[0] >= 4 and counts[1] == counts[0], counts  # replaced, not added to
