@@ -11,7 +11,7 @@ import json
 import sys
 
 from jobdesk import phases
-from jobdesk.errors import JobdeskError
+from jobdesk.errors import JobdeskError, JobNotFound
 
 
 def _desk(args):
@@ -36,11 +36,19 @@ def _size(n) -> str:
 
 
 def _row(job) -> str:
+    from jobdesk.desk import unreachable_note
     r = job.record
     rows = "-" if r.get("rows") is None else str(r["rows"])
     mark = " truncated" if r.get("truncated") else ""
-    return (f"{r['id']}  {r['phase']:<10} {rows:>9}{mark:<10} {_size(r.get('result_bytes')):>9}  "
+    line = (f"{r['id']}  {r['phase']:<10} {rows:>9}{mark:<10} {_size(r.get('result_bytes')):>9}  "
             f"{_when(r['created'])}  {job.title[:50]}")
+    note = unreachable_note(r)
+    if note:
+        line += f"\n{'':18}{note}: {r.get('last_error') or ''}"
+    if r["phase"] == phases.UNREACHED:
+        line += (f"\n{'':18}never reached the service, no job exists there: "
+                 f"`jobdesk resend {r['id']}` or `jobdesk forget {r['id']}`")
+    return line
 
 
 def cmd_list(args) -> int:
@@ -70,10 +78,16 @@ def cmd_show(args) -> int:
         print(json.dumps(job.record, indent=1))
         return 0
     r = job.record
+    from jobdesk.desk import unreachable_note
     for name in ("id", "phase", "service", "job_url", "label", "rows", "truncated",
-                 "result_bytes", "requests", "error", "notebook"):
+                 "result_bytes", "requests", "error", "error_detail", "notebook"):
         if r.get(name) is not None:
             print(f"{name:>13}: {r[name]}")
+    if unreachable_note(r):
+        print(f"{'unreachable':>13}: {unreachable_note(r)}")
+    if r["phase"] in (phases.ERROR, phases.ABORTED, phases.LOST, phases.UNREACHED):
+        print(f"{'next':>13}: `jobdesk resend {r['id']}` (same query, new job) or "
+              f"`jobdesk forget {r['id']}`")
     print(f"{'created':>13}: {_when(r['created'])}")
     print("         ADQL:\n    " + r["adql"].strip().replace("\n", "\n    "))
     for h in job.desk.index.history(job.id):
@@ -101,6 +115,10 @@ def cmd_wait(args) -> int:
     failed = 0
     for job_id in ids:
         job = desk.job(job_id)
+        if job.phase == phases.UNREACHED:
+            print(f"{job_id}: skipped: the service was never reached and no job exists there; "
+                  f"`jobdesk resend {job_id}` or `jobdesk forget {job_id}`", file=sys.stderr)
+            continue
         try:
             job.wait(timeout=args.timeout)
         except JobdeskError as exc:
@@ -112,6 +130,12 @@ def cmd_wait(args) -> int:
 
 def cmd_abort(args) -> int:
     print(_row(_desk(args).abort(args.id)))
+    return 0
+
+
+def cmd_resend(args) -> int:
+    job = _desk(args).resend(args.id)
+    print(_row(job))
     return 0
 
 
@@ -433,6 +457,10 @@ def parser() -> argparse.ArgumentParser:
     s.add_argument("id")
     s.set_defaults(func=cmd_abort)
 
+    s = sub.add_parser("resend", help="send a failed or unreached job's query again (new job)")
+    s.add_argument("id")
+    s.set_defaults(func=cmd_resend)
+
     s = sub.add_parser("forget", help="drop a job record")
     s.add_argument("id")
     s.set_defaults(func=cmd_forget)
@@ -509,7 +537,8 @@ def parser() -> argparse.ArgumentParser:
     s.add_argument("--json", action="store_true")
     s.set_defaults(func=cmd_compare)
 
-    s = sub.add_parser("demo", help="the whole story, offline, on the embedded TAP service")
+    s = sub.add_parser("demo", help="the whole story, offline, on the embedded TAP service "
+                                    "(in a throwaway desk unless --root is given)")
     s.add_argument("--rows", type=int, default=20000, help="size of the demo catalogue")
     s.set_defaults(func=cmd_demo)
     return p
@@ -519,6 +548,9 @@ def main(argv: list[str] | None = None) -> int:
     args = parser().parse_args(argv)
     try:
         return args.func(args)
+    except JobNotFound as exc:
+        print(f"jobdesk: {exc}", file=sys.stderr)
+        return 1
     except JobdeskError as exc:
         print(f"jobdesk: {exc}", file=sys.stderr)
         return 2

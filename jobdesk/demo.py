@@ -4,7 +4,8 @@ It starts ``jobdesk.localtap`` on loopback with an invented catalogue, then walk
 user meets: an async job with progress, a kernel killed mid-job and the same server job picked
 up again, a result truncated by MAXREC, a bad query's message, a cache hit with the service
 down, and an analysis re-run on the catalogue's second release with a report of what changed.
-The jobs land in the normal desk (``$JOBDESK_HOME``), so the JupyterLab sidebar shows them.
+It runs in a throwaway desk of its own (a new temporary directory, named at the start) unless
+``--root`` names one; there, the job records of the previous demo run are replaced, not added to.
 """
 
 from __future__ import annotations
@@ -16,6 +17,7 @@ import textwrap
 import time
 import warnings
 
+from jobdesk import keys
 from jobdesk.desk import Desk
 from jobdesk.errors import JobdeskError, ResultTruncated, ResultTruncatedWarning
 
@@ -39,7 +41,7 @@ BAD = "SELECT orrery_id, ra, dec FORM orrery.sources"
 _KILLED_KERNEL = """
 import sys
 from jobdesk import Desk
-job = Desk(sys.argv[1]).submit(sys.argv[2], sys.argv[3], label="north cap visits")
+job = Desk(sys.argv[1]).submit(sys.argv[2], sys.argv[3], label="demo: north cap visits")
 print(job.id, flush=True)
 job.wait(progress=False)
 """
@@ -54,17 +56,22 @@ def _say(step: str, text: str = "") -> None:
 def run(root=None, rows: int = 20000) -> int:
     from jobdesk import localtap
 
-    desk = Desk(root)
+    throwaway = root is None
+    desk = Desk(tempfile.mkdtemp(prefix="jobdesk-demo-") if throwaway else root)
+    if not throwaway:
+        _forget_earlier_runs(desk)
     state = tempfile.mkdtemp(prefix="jobdesk-demo-tap-")
     _say("Starting the embedded TAP service",
          f"an invented catalogue of {rows} sources, each async job held EXECUTING 3 s")
     tap = localtap.spawn(state=state, rows=rows, exec_delay=3.0)
     try:
         url = tap.url
-        print(f"   service: {url}\n   desk:    {desk.root}")
+        print(f"   service: {url}\n   desk:    {desk.root}"
+              + (" (a throwaway desk for this demo; --root DIR keeps it elsewhere)"
+                 if throwaway else ""))
 
         _say("1. Submit a cone search and wait", CONE)
-        job = desk.submit(url, CONE, label="cone around (150, +20)")
+        job = desk.submit(url, CONE, label="demo: cone around (150, +20)")
         job.wait()
         table = job.table()
         print(f"   {job.phase}: {len(table)} rows; columns "
@@ -80,7 +87,7 @@ def run(root=None, rows: int = 20000) -> int:
         child.kill()
         child.wait()
         print(f"   killed the process that submitted job {first_id}")
-        again = desk.submit(url, SLOW, label="north cap visits")
+        again = desk.submit(url, SLOW, label="demo: north cap visits")
         again.wait()
         created = tap.stats()["jobs_created"] - before
         print(f"   re-submitted: job {again.id} (same record: {again.id == first_id}); "
@@ -89,7 +96,7 @@ def run(root=None, rows: int = 20000) -> int:
         _say("3. A result truncated by MAXREC is never served as complete", BIG + "   -- MAXREC=500")
         with warnings.catch_warnings(record=True) as caught:
             warnings.simplefilter("always")
-            cut = desk.submit(url, BIG, maxrec=500, label="all sources, capped").wait()
+            cut = desk.submit(url, BIG, maxrec=500, label="demo: all sources, capped").wait()
         for w in caught:
             if issubclass(w.category, ResultTruncatedWarning):
                 print(f"   warning: {w.message}")
@@ -101,7 +108,7 @@ def run(root=None, rows: int = 20000) -> int:
 
         _say("4. A bad query gets the service's own message", BAD)
         try:
-            desk.submit(url, BAD, label="typo", check=False).wait()
+            desk.submit(url, BAD, label="demo: typo", check=False).wait()
         except JobdeskError as exc:
             print(f"   {type(exc).__name__}: {exc}".replace("\n", "\n   "))
         print("   checked locally first (submit does this by default, before any request):")
@@ -117,8 +124,16 @@ def run(root=None, rows: int = 20000) -> int:
               f"no request to the service (job {hit.id}, same as step 1: {hit.id == job.id})")
 
         _say("6. Where the table came from", hit.account())
-        print("\n   More: `jobdesk list`, `jobdesk show <id>`, `jobdesk export <id> out.fits`,"
-              "\n   or open JupyterLab and the 'Job desk' sidebar.")
+        where = f"--root {desk.root} " if throwaway else ""
+        print(f"\n   More: `jobdesk {where}list`, `jobdesk {where}show <id>`,"
+              f"\n   `jobdesk {where}export <id> out.fits`; the desk stays at {desk.root}.")
+        if throwaway:
+            from jobdesk.desk import default_root
+            print(f"   To see the demo's jobs in the JupyterLab sidebar, run it in your desk:"
+                  f"\n   jobdesk --root {default_root()} demo")
+        from jobdesk.server import SIDEBAR_MISSING, sidebar_built
+        if not sidebar_built():
+            print(f"\n   Note: {SIDEBAR_MISSING}")
     finally:
         tap.stop()
     tap = localtap.spawn(state=state, rows=rows)   # up again (the same catalogue, re-used)
@@ -148,8 +163,8 @@ def _rerun_story(desk, url: str) -> None:
     _say("7. An analysis: two steps, the second uploads the first's result",
          stars + "\n\n" + visits)
     with desk.analysis(name):
-        first = desk.submit(url, stars, label="north stars").wait(progress=False)
-        desk.submit(url, visits, uploads={"mine": first}, label="their visits").wait(progress=False)
+        first = desk.submit(url, stars, label="demo: north stars").wait(progress=False)
+        desk.submit(url, visits, uploads={"mine": first}, label="demo: their visits").wait(progress=False)
     print(f"   analysis {name!r}: {len(desk.analysis_jobs(name))} steps")
 
     _say("8. The archive publishes release 2: plan the same analysis on it",
@@ -173,3 +188,15 @@ def _rerun_story(desk, url: str) -> None:
               f"removed {c.removed}, matched {c.matched}; changed values: {moved}")
     html, _ = comparisons.report(Path(desk.root) / "reports" / "release-report.html")
     print(f"   report: {html} (and {html.with_suffix('.json').name})")
+
+
+def _forget_earlier_runs(desk: Desk) -> int:
+    """Drop the records an earlier demo run left in this desk (its service had another port,
+    so its jobs would pile up): loopback services, labels starting "demo: "."""
+    gone = 0
+    for job in desk.jobs(text="demo: ", limit=None):
+        r = job.record
+        host = keys.service_id(r["service"]).split("//", 1)[-1]
+        if (r.get("label") or "").startswith("demo: ") and host.startswith("127.0.0.1:"):
+            gone += desk.forget(job.id)
+    return gone

@@ -25,9 +25,10 @@ from jobdesk import (analyses, formats, keys, metadata, phases, provenance, resu
 from jobdesk import uploads as upload_tables
 from jobdesk.errors import (
     BadServiceURL, CacheCorrupt, GroupCacheWarning, JobAborted, JobdeskError, JobFailed, JobLost,
-    MetadataUnavailable, MetadataWarning, NotRepeatableWarning, QueryCheckWarning, QueryRejected,
-    SyncTimeout, UnknownTable, ResultTruncated, ResultTruncatedWarning,
-    ResultUnavailable, ServiceRefused, ServiceResponseInvalid, ServiceUnreachable, WaitTimeout,
+    JobNotFound, JobUnreached, MetadataUnavailable, MetadataWarning, NotRepeatableWarning,
+    QueryCheckWarning, QueryEmpty, QueryRejected, SyncTimeout, UnknownTable, ResultTruncated,
+    ResultTruncatedWarning, ResultUnavailable, ServiceRefused, ServiceResponseInvalid,
+    ServiceUnreachable, WaitTimeout,
 )
 from jobdesk.groups import GroupCaches
 from jobdesk.index import Index, this_process
@@ -38,8 +39,12 @@ from jobdesk.transfer import FetchMeter
 DEFAULT_RUNNING_LIMIT = 4     # jobs per service at once; common practice, no source
 HELD_RETRY = 5.0              # seconds between PHASE=RUN to a HELD job; common practice, no source
 LEASE_SECONDS = 60.0          # a driver renews its lease at least this often
-UNREACHABLE_SLICES = 3        # consecutive failed slices before wait() gives up (job kept)
-FAILED = frozenset({phases.ERROR, phases.ABORTED, phases.LOST, phases.ARCHIVED})
+UNREACHABLE_SLICES = 3        # with a timeout: consecutive failed slices before wait() gives up
+SEND_TRIES = 3                # tries to create a job before its record ends UNREACHED
+RETRY_PAUSE = 5.0             # seconds before the 2nd try of an unreachable service, doubling
+RETRY_PAUSE_MAX = 60.0        # ... up to this (common practice, no source)
+FAILED = frozenset({phases.ERROR, phases.ABORTED, phases.LOST, phases.ARCHIVED,
+                    phases.UNREACHED})
 
 
 def default_root() -> Path:
@@ -67,7 +72,8 @@ class Desk:
 
     def __init__(self, root: Path | str | None = None, groups=None, *, session=None,
                  scope: str | None = None, limits: dict[str, int] | None = None,
-                 wait_window: int = 30, attempts: int = 5, timeout: float = 30.0):
+                 wait_window: int = 30, attempts: int = 5, timeout: float = 30.0,
+                 send_tries: int = SEND_TRIES):
         self.root = Path(root) if root is not None else default_root()
         self.root.mkdir(parents=True, exist_ok=True)
         self.index = Index(self.root / "index.sqlite")
@@ -77,6 +83,9 @@ class Desk:
         self.scope = scope
         self.limits = {keys.service_id(k): v for k, v in (limits or {}).items()}
         self.owner = this_process()
+        # How many times creating a job may fail for want of an answer before the record ends
+        # UNREACHED (each try is itself ``attempts`` HTTP tries).
+        self.send_tries = max(1, int(send_tries))
         self._remote_options = {"wait_window": wait_window, "attempts": attempts,
                                 "timeout": timeout}
         # Waiting goes in slices of one WAIT window (plus a second, so the window's own read
@@ -109,6 +118,8 @@ class Desk:
         ``fmt`` is a RESPONSEFORMAT to insist on; without it the fastest one the service offers
         is used, and the cache key is the default format's.
         """
+        if not isinstance(adql, str) or not _meaningful(adql):
+            raise QueryEmpty("the query is empty: there is nothing to send")
         name = analysis if analysis is not None else analyses.current()
         sources = analyses.upload_sources(uploads) if name is not None else {}
         rows_given = {k: (None if isinstance(v, Job) else len(v))
@@ -207,7 +218,7 @@ class Desk:
     def job(self, job_id: str) -> "Job":
         record = self.index.get(job_id)
         if record is None:
-            raise KeyError(f"no job {job_id!r} in {self.root}")
+            raise JobNotFound(job_id, self.root)
         return Job(self, job_id, record)
 
     def abort(self, job_id: str) -> "Job":
@@ -217,17 +228,53 @@ class Desk:
             return Job(self, job_id, record)
         if record.get("job_url"):
             remote = self._remote(record["service"])
+            # Said first, so a process driving the job reads the abort as the user's own.
+            self.index.update(job_id, error=USER_ABORT)
             try:
                 remote.abort(record["job_url"])
+            except BaseException:
+                self.index.update(job_id, error=record.get("error"))
+                raise
             finally:
                 self.index.update(job_id, requests_add=remote.requests)
         self.index.update(job_id, phase=phases.ABORTED, finished=time.time(),
-                          error="aborted from jobdesk", note="aborted by the user")
+                          error=USER_ABORT, note="aborted by the user", next_try=None)
         return self.job(job_id)
 
     def forget(self, job_id: str) -> bool:
         """Drop a record (its cached files go at the next prune if nothing else uses them)."""
+        self.job(job_id)  # JobNotFound for an unknown id
         return self.index.forget(job_id)
+
+    def set_label(self, job_id: str, label: str | None) -> "Job":
+        """Give a record a label (None clears it); the label is for people, not in the key."""
+        self.job(job_id)
+        self.index.update(job_id, label=label)
+        return self.job(job_id)
+
+    def resend(self, job_id: str) -> "Job":
+        """Send a record's query again as a new job (same query, service, MAXREC, uploads and
+        label): the next step after ERROR, ABORTED, LOST or UNREACHED. A run of the same query
+        already going on is shared instead."""
+        old = self.job(job_id).record
+        if old["phase"] not in FAILED:
+            return Job(self, job_id, old)
+        new_id = uuid.uuid4().hex[:16]
+        fields = {name: old.get(name) for name in (
+            "service", "adql", "canonical", "maxrec", "fmt", "label", "scope", "uploads",
+            "warnings", "notebook", "user", "host")}
+        fields.update(id=new_id, phase=phases.UNSENT, run_id=f"jobdesk-{new_id}",
+                      layer="personal", requests=0)
+        record, created = self.index.claim(
+            old["key"], fields, reuse=lambda r: r["phase"] in phases.ACTIVE)
+        if created:
+            self.index.update(job_id, note=f"sent again as {new_id}")
+            try:
+                self._try_start(record)
+            except JobdeskError as exc:
+                if not _transient(exc):
+                    raise
+        return Job(self, record["id"])
 
     def cache_summary(self) -> dict:
         """What the caches hold. ``entries`` counts files; ``results`` counts results (a
@@ -549,6 +596,8 @@ class Desk:
         owner = owner or self.owner
         advanced = 0
         for record in self.index.unfinished(service=service):
+            if (record.get("next_try") or 0) > time.time():
+                continue  # the service was unreachable; its next try is not due yet
             try:
                 if record["phase"] == phases.UNSENT:
                     advanced += self._try_start(record, owner=owner)["phase"] != phases.UNSENT
@@ -611,30 +660,55 @@ class Desk:
                         raise
                     job_url = create(formats.DEFAULT)
                 self.index.update(job_id, job_url=job_url, phase=phases.SUBMITTED,
-                                  submitted=time.time(), error=None,
-                                  note="created on the service")
+                                  submitted=time.time(), error=None, note="created on the service",
+                                  **_REACHED)
                 remote.run(job_url)
                 self._announce(job_id)
             else:
                 self.index.update(job_id, job_url=job_url, phase=phases.SUBMITTED,
                                   submitted=time.time(), error=None,
-                                  note="re-attached after a crash")
+                                  note="re-attached after a crash", **_REACHED)
                 if remote.status(job_url).phase == phases.PENDING:
                     remote.run(job_url)
         except JobdeskError as exc:
-            if _transient(exc):
+            fresh = self.index.get(job_id) or record
+            if _transient(exc) and fresh.get("job_url"):
+                self._unreachable(fresh, exc)  # created, only RUN went unanswered
+            elif _transient(exc):
                 # The service may hold the job (only its answer was lost) or be down a while:
-                # the record stays as it is, so the next wait, submit or poller pass finds the
-                # job by its RUNID (or starts it) instead of making a second one.
-                self.index.update(job_id, error=str(exc), note="service unreachable; kept")
+                # the record stays UNSENT, so the next wait, submit or poller pass finds the
+                # job by its RUNID (or starts it) instead of making a second one; after
+                # ``send_tries`` tries it ends UNREACHED, saying why.
+                tries = (fresh.get("send_tries") or 0) + 1
+                if tries >= self.send_tries:
+                    since = fresh.get("unreachable_since") or time.time()
+                    self.index.update(
+                        job_id, phase=phases.UNREACHED, finished=time.time(), send_tries=tries,
+                        error=f"the service could not be reached in {tries} tries over "
+                              f"{_seconds_text(time.time() - since)}: {exc.message}",
+                        last_error=exc.message, error_detail=exc.detail, next_try=None,
+                        note="never reached the service; no job exists there")
+                else:
+                    self._unreachable(fresh, exc, send_tries=tries)
             else:
                 self.index.update(job_id, phase=phases.ERROR, error=str(exc),
-                                  finished=time.time(), note="could not create the job")
+                                  error_detail=exc.detail, finished=time.time(),
+                                  note="could not create the job")
             raise
         finally:
             self.index.update(job_id, requests_add=remote.requests)
             self.index.release(job_id, owner)
         return self.index.get(job_id)
+
+    def _unreachable(self, record: dict, exc: JobdeskError, **fields) -> dict:
+        """Record that the service did not answer: since when, why, and when the next try is."""
+        now = time.time()
+        since = record.get("unreachable_since") or now
+        tries = fields.get("send_tries") or record.get("send_tries") or 1
+        pause = min(RETRY_PAUSE * 2 ** max(0, tries - 1), RETRY_PAUSE_MAX)
+        return self.index.update(record["id"], unreachable_since=since, last_error=exc.message,
+                                 error_detail=exc.detail, next_try=now + pause,
+                                 error=str(exc), note=None, **fields)
 
     def _find_orphan(self, record: dict, remote: Remote) -> str | None:
         """The server job a killed process created but never recorded, if the service has it."""
@@ -651,8 +725,17 @@ class Desk:
 
         ran = False
 
+        def trouble(exc) -> None:
+            if isinstance(exc, ServiceUnreachable):
+                record.update(self._unreachable(self.index.get(job_id) or record, exc))
+                if on_status:
+                    on_status(None)
+
         def seen(status) -> None:
             nonlocal ran
+            if record.get("unreachable_since"):
+                self.index.update(job_id, **_REACHED)
+                record.update(_REACHED)
             if status.phase == phases.PENDING and not ran:
                 ran = True  # created, but its RUN was lost or never sent (a crash in between)
                 remote.run(record["job_url"])
@@ -662,7 +745,12 @@ class Desk:
                 fields["started"] = record["started"] = began    # the service's own startTime
             elif status.phase == phases.EXECUTING and not record.get("started"):
                 fields["started"] = record["started"] = time.time()
-            if status.phase != record["phase"] or "started" in fields:
+            for name, value in (("service_started", status.start_time),
+                                ("service_finished", status.end_time)):
+                when = _unix(value)
+                if when is not None and record.get(name) != when:
+                    fields[name] = record[name] = when
+            if status.phase != record["phase"] or len(fields) > 1:
                 self.index.update(job_id, **fields)
                 record["phase"] = status.phase
             last_run = self._held_run.get(record["job_url"], 0.0)
@@ -682,7 +770,8 @@ class Desk:
                 seen(status)
             else:
                 status = remote.wait(record["job_url"], deadline=deadline, on_status=seen,
-                                     known=self._last_status.get(record["job_url"]))
+                                     known=self._last_status.get(record["job_url"]),
+                                     on_trouble=trouble)
             self._last_status[record["job_url"]] = status
             if status.phase == phases.COMPLETED:
                 self._fetch(record, status, remote, on_transfer=on_transfer)
@@ -698,12 +787,18 @@ class Desk:
                         and self._may_fall_back(record, fmt, message, again=True)):
                     self.index.update(job_id, phase=phases.ERROR, error=message,
                                       finished=time.time())
-            elif status.phase in (phases.ABORTED, phases.ARCHIVED):
+            elif status.phase in (phases.ABORTED, phases.ARCHIVED) and not (
+                    status.phase == phases.ABORTED
+                    and (self.index.get(job_id) or {}).get("error") == USER_ABORT):
+                # (an abort from this desk has already said so, in its own words)
                 self.index.update(job_id, phase=status.phase, finished=time.time(),
                                   error=status.error_summary or f"the job is {status.phase}")
         except JobLost as exc:
             self.index.update(job_id, phase=phases.LOST, finished=time.time(), error=str(exc),
                               note="the service no longer knows the job")
+        except ServiceUnreachable as exc:
+            self._unreachable(self.index.get(job_id) or record, exc)
+            raise
         finally:
             self.index.update(job_id, requests_add=remote.requests)
             self._announce(job_id)
@@ -867,43 +962,58 @@ class Job:
     def wait(self, timeout: float | None = None, *, progress: bool = True) -> "Job":
         """Block until the result is cached here; raise the matching error if the job failed.
 
-        Progress shows as a card in a notebook and a line in a terminal. ``timeout`` bounds the
-        wait (``WaitTimeout``); the job itself goes on either way.
+        Progress shows as a card in a notebook and a line in a terminal; while the service does
+        not answer they say so, and when the next try is. Without ``timeout`` waiting goes on
+        through an outage; with one, ``WaitTimeout`` says how long the service was unreachable.
+        The job itself goes on either way. A job you aborted yourself ends the wait quietly.
         """
         deadline = None if timeout is None else time.monotonic() + timeout
         display = _progress(self.title, self.id) if progress else None
         t0 = time.monotonic()
         unreachable = 0
         record = self.record
+
+        def show(phase: str | None = None) -> None:
+            if display is not None:
+                now = self.desk.index.get(self.id) or record
+                # Another process may be fetching: show its figures from the index too.
+                fetch = now.get("fetch") or {}
+                if fetch.get("stage") == "download":
+                    display.transfer(fetch.get("bytes") or 0, fetch.get("total"))
+                note = unreachable_note(now) or (
+                    transfer.describe(fetch) if fetch.get("stage") == "convert" else "")
+                display.update(phase or now["phase"], time.monotonic() - t0, now.get("rows"),
+                               note=note)
         try:
             while True:
                 record = self.record
-                if display is not None:
-                    # Another process may be fetching: show its figures from the index too.
-                    fetch = record.get("fetch") or {}
-                    if fetch.get("stage") == "download":
-                        display.transfer(fetch.get("bytes") or 0, fetch.get("total"))
-                    display.update(record["phase"], time.monotonic() - t0, record.get("rows"),
-                                   transfer.describe(fetch) if fetch.get("stage") == "convert"
-                                   else "")
-                    if display.cancelled and record["phase"] not in phases.TERMINAL:
-                        self.desk.abort(self.id)
-                        continue
+                show()
+                if display is not None and display.cancelled \
+                        and record["phase"] not in phases.TERMINAL:
+                    self.desk.abort(self.id)
+                    continue
                 if record["phase"] == phases.COMPLETED and record.get("parquet_sha256"):
                     if display is not None and record.get("truncated"):
                         display.update(record["phase"], time.monotonic() - t0, record["rows"],
                                        note="truncated: not the full answer (MAXREC or a "
                                             "service limit)")
                     return self
+                if record["phase"] == phases.ABORTED and record.get("error") == USER_ABORT:
+                    print(f"jobdesk: job {self.id} was aborted at your request; it has no "
+                          f"result (send it again with desk.resend({self.id!r}))")
+                    return self
                 if record["phase"] in FAILED:
                     raise self._failure(record)
                 if deadline is not None and time.monotonic() >= deadline:
-                    raise WaitTimeout(f"job {self.id} is still {record['phase']} after "
-                                      f"{timeout:g} s", service=record["service"])
+                    raise self._timeout(record, timeout)
                 slice_end = time.monotonic() + self.desk.drive_slice
                 if deadline is not None:
                     slice_end = min(slice_end, deadline)
                 try:
+                    if (record.get("next_try") or 0) > time.time():
+                        _sleep_until(min(slice_end, time.monotonic() + record["next_try"]
+                                         - time.time()), 1.0)  # ticks the note's countdown
+                        continue
                     if record["phase"] == phases.UNSENT:
                         if self.desk._try_start(record)["phase"] == phases.UNSENT:
                             self.desk.step(service=record["service"])
@@ -911,9 +1021,7 @@ class Job:
                     elif self.desk.index.take_lease(self.id, self.desk.owner, LEASE_SECONDS):
                         try:
                             def shown(status):
-                                if display is not None:
-                                    display.update(status.phase, time.monotonic() - t0,
-                                                   record.get("rows"))
+                                show(status.phase if status is not None else None)
                             def fetched(done, total):
                                 if display is not None:
                                     display.transfer(done, total)
@@ -925,17 +1033,39 @@ class Job:
                         _sleep_until(slice_end, 0.5)  # another process drives it: watch
                     unreachable = 0
                 except ServiceUnreachable:
+                    if self.record["phase"] in FAILED:
+                        continue  # it ended UNREACHED: the loop says so
                     unreachable += 1
-                    if unreachable >= UNREACHABLE_SLICES:
+                    if deadline is not None and unreachable >= UNREACHABLE_SLICES:
                         raise
-                    _sleep_until(slice_end, 5.0)
         finally:
             if display is not None:
                 display.close(record["phase"])
 
+    def _timeout(self, record: dict, timeout: float) -> WaitTimeout:
+        since = record.get("unreachable_since")
+        if since:
+            return WaitTimeout(
+                f"job {self.id}: the service has been unreachable for "
+                f"{_seconds_text(time.time() - since)} ({record.get('last_error')}); the record "
+                f"is still {record['phase']} and retries at the next wait",
+                service=record["service"], detail=record.get("error_detail"))
+        return WaitTimeout(f"job {self.id} is still {record['phase']} after {timeout:g} s",
+                           service=record["service"])
+
+    def failure(self) -> JobdeskError | None:
+        """The error this job ended with (message, hint, detail), or None if it did not fail."""
+        record = self.record
+        if record["phase"] not in FAILED:
+            return None
+        return self._failure(record)
+
     def _failure(self, record: dict) -> JobdeskError:
         message = record.get("error") or f"job {self.id} ended in {record['phase']}"
         service = record["service"]
+        if record["phase"] == phases.UNREACHED:
+            return JobUnreached(f"job {self.id}: {message}", service=service,
+                                detail=record.get("error_detail"))
         if record["phase"] == phases.ABORTED:
             return JobAborted(message, phase=phases.ABORTED, service=service)
         if record["phase"] in (phases.LOST, phases.ARCHIVED):
@@ -1022,6 +1152,17 @@ class Job:
         return (f"from jobdesk import Desk\n\n"
                 f"table = Desk({root}).job({self.id!r}).table({opt})  # {self.title[:60]}\n")
 
+    def query_code(self) -> str:
+        """Python that sends this record's query again, to edit in a notebook first."""
+        r = self.record
+        root = "" if self.desk.root == default_root() else repr(str(self.desk.root))
+        options = "".join(f", {name}={r[name]!r}" for name in ("maxrec", "label")
+                          if r.get(name) is not None)
+        quoted = r["adql"].strip().replace("\\", "\\\\").replace('"""', '\\"\\"\\"')
+        return (f"from jobdesk import Desk\n\n"
+                f"job = Desk({root}).submit(\n    {r['service']!r},\n    \"\"\"\n{quoted}\n\"\"\"{options},\n"
+                f"    refresh=True,\n)\njob.wait()\n")
+
     def preview(self, rows: int = 20) -> dict:
         """The first rows and the column descriptions, JSON-safe, without loading everything."""
         path = self._result_path(allow_truncated=True)
@@ -1039,6 +1180,41 @@ def _unix(text: str | None) -> float | None:
     if moment.tzinfo is None:
         moment = moment.replace(tzinfo=_dt.timezone.utc)   # UWS times are UTC (DALI 1.1 §3.3.3)
     return moment.timestamp()
+
+
+USER_ABORT = "aborted from jobdesk"  # the error text of a job its user aborted
+# Fields that end the "service unreachable" state once the service answers again.
+_REACHED = {"unreachable_since": None, "last_error": None, "error_detail": None,
+            "next_try": None, "send_tries": 0}
+
+
+def service_duration(record: dict) -> float | None:
+    """How long the job ran by the service's own clock (startTime to endTime), if it said."""
+    start, end = record.get("service_started"), record.get("service_finished")
+    return None if start is None or end is None else max(0.0, end - start)
+
+
+def unreachable_note(record: dict) -> str:
+    """``service unreachable for 40 s, retrying (next try in 5 s)``, or "" when it answers."""
+    since = record.get("unreachable_since")
+    if not since or record.get("phase") in phases.TERMINAL:
+        return ""
+    now = time.time()
+    text = f"service unreachable for {_seconds_text(now - since)}, retrying"
+    if record.get("next_try"):
+        text += f" (next try in {max(0, round(record['next_try'] - now))} s)"
+    return text
+
+
+def _seconds_text(seconds: float) -> str:
+    from jobdesk.progress import format_elapsed
+    return format_elapsed(seconds)
+
+
+def _meaningful(adql: str) -> bool:
+    """Whether the text holds anything but whitespace and ADQL comments (ADQL 2.1 §2.1.4:
+    ``--`` to the end of the line)."""
+    return any(line.split("--", 1)[0].strip() for line in adql.splitlines())
 
 
 def _warn_not_repeatable(reasons) -> None:

@@ -1,8 +1,10 @@
 """Every error jobdesk raises, grouped by what failed.
 
-Each error carries the service's own message where there is one and a ``hint`` that says what
-to do next. :func:`from_transport` is the single place where exceptions of the libraries
-underneath (requests, sqlite3, OSError) become ours.
+Each error says in our words what happened (the service's own message where it has one worth
+reading), a ``hint`` that says what to do next, and in ``detail`` the raw text of the library or
+page underneath, never as the message. :func:`from_transport` is the single place where
+exceptions of the libraries underneath (requests, sqlite3, OSError) become ours.
+docs/errors.md lists every class, when it happens and its hint; a test keeps the two in step.
 """
 
 from __future__ import annotations
@@ -18,11 +20,13 @@ class JobdeskError(Exception):
 
     hint: str = ""
 
-    def __init__(self, message: str, *, hint: str | None = None, service: str | None = None):
+    def __init__(self, message: str, *, hint: str | None = None, service: str | None = None,
+                 detail: str | None = None):
         self.message = message
         if hint is not None:
             self.hint = hint
         self.service = service
+        self.detail = detail  # the raw text underneath (library, web page), for a bug report
         super().__init__(message)
 
     def __str__(self) -> str:
@@ -44,17 +48,43 @@ class ServiceError(JobdeskError):
 class ServiceUnreachable(ServiceError):
     """No answer: connection refused or reset, DNS failure, or timeouts, after every retry."""
 
-    hint = "check the service URL and your network; the job record is kept, so re-run the same call later"
+    hint = ("check the service URL and your network; the job record is kept and wait() tries "
+            "again, saying when")
 
 
 class ServiceRefused(ServiceError):
-    """The service answered with an HTTP error status (after retries for 5xx and 429)."""
+    """The service answered with an HTTP error status (after retries for 5xx and 429).
 
-    hint = "read the service's message above; if it is overloaded, try again later"
+    The hint follows the status (``STATUS_HINTS``): HTTP itself says what each class means
+    (RFC 9110 §15.5.5 404, §15.5.2 401, §15.5.4 403, §15.6 5xx).
+    """
+
+    hint = "read the service's message above and fix the request it points at"
 
     def __init__(self, message: str, *, status: int | None = None, **kw):
+        if kw.get("hint") is None and status is not None:
+            kw["hint"] = status_hint(status)
         super().__init__(message, **kw)
         self.status = status
+
+
+# What an HTTP status most likely means for a TAP client, and what to do next.
+STATUS_HINTS: dict[str, str] = {
+    "404": ("wrong path or job gone: check that the URL is the TAP service's base URL (the one "
+            "ending before /async, /sync, /tables); a job the service deleted cannot come back"),
+    "401": "credentials: the service wants you to log in; pass a session that carries them",
+    "403": ("credentials: the service knows who you are but refuses this; check your account's "
+            "rights or the token's scope"),
+    "429": "the service asks for fewer requests: wait a while, then call wait() again",
+    "5xx": ("service trouble: the service failed on its side; the record is kept, try again "
+            "later and tell the service's operators if it lasts"),
+}
+
+
+def status_hint(status: int) -> str:
+    if 500 <= status <= 599:
+        return STATUS_HINTS["5xx"]
+    return STATUS_HINTS.get(str(status), ServiceRefused.hint)
 
 
 class ServiceResponseInvalid(ServiceError):
@@ -88,6 +118,13 @@ class UnknownTable(JobdeskError, KeyError):
         return JobdeskError.__str__(self)
 
 
+class NotATapService(ServiceResponseInvalid):
+    """A web page came back where a TAP or UWS document was expected."""
+
+    hint = ("this URL is not a TAP service, or a login page is in the way: open it in a browser, "
+            "and give the TAP base URL (or log in and pass a session with the credentials)")
+
+
 class BadServiceURL(ServiceError):
     """The service address cannot be used (not http/https, no host)."""
 
@@ -108,6 +145,12 @@ class QueryRejected(JobdeskError):
         self.findings = list(findings or [])
 
 
+class QueryEmpty(QueryRejected):
+    """The query is empty or only whitespace (or comments): refused here, nothing is sent."""
+
+    hint = "write the ADQL to run, e.g. SELECT TOP 10 * FROM some_schema.some_table"
+
+
 class UploadInvalid(JobdeskError):
     """A table given in ``uploads=`` cannot be sent (bad name or not a table)."""
 
@@ -117,7 +160,8 @@ class UploadInvalid(JobdeskError):
 class JobFailed(JobdeskError):
     """The job ended in ERROR or ABORTED; ``summary`` holds the UWS errorSummary message."""
 
-    hint = "read the service's message; resubmit with refresh=True once the cause is fixed"
+    hint = ("read the service's message; once the cause is fixed send it again: "
+            "desk.resend(ID) or `jobdesk resend ID` (same query, new job)")
 
     def __init__(self, message: str, *, phase: str = "ERROR", summary: str | None = None, **kw):
         super().__init__(message, **kw)
@@ -128,13 +172,32 @@ class JobFailed(JobdeskError):
 class JobAborted(JobFailed):
     """The job was aborted (by you, a colleague or the service)."""
 
-    hint = "submit again with refresh=True to run it anew"
+    hint = "send it again to run it anew: desk.resend(ID) or `jobdesk resend ID`"
 
 
 class JobLost(JobdeskError):
     """The service no longer knows the job (destroyed or expired) and no result was saved."""
 
-    hint = "resubmit with refresh=True; jobdesk keeps the old record for reference"
+    hint = ("send it again: desk.resend(ID) or `jobdesk resend ID`; the old record stays "
+            "for reference")
+
+
+class JobUnreached(ServiceUnreachable):
+    """The job was never created: the service could not be reached in every try (UNREACHED)."""
+
+    hint = ("no job exists on the service; check the URL and your network, then send it again "
+            "(jobdesk resend ID, or submit(..., refresh=True)) or forget the record")
+
+
+class JobNotFound(JobdeskError, KeyError):
+    """No record with this job id in this desk (a KeyError too, for older code)."""
+
+    hint = "list the recorded jobs with `jobdesk list` (or desk.jobs()) and use one of their ids"
+
+    def __init__(self, job_id: str, root: object = None, **kw):
+        where = f" in {root}" if root is not None else ""
+        super().__init__(f"no job {job_id!r}{where}", **kw)
+        self.job_id = job_id
 
 
 class WaitTimeout(JobdeskError, TimeoutError):
@@ -230,7 +293,8 @@ class ExportTargetExists(ExportRefused):
 class StorageFull(JobdeskError):
     """The disk holding the cache is full or over quota; nothing half-written was kept."""
 
-    hint = "free space (jobdesk prune) or point JOBDESK_HOME at a larger disk, then wait() again"
+    hint = ("free space (desk.prune(dry_run=False)) or point JOBDESK_HOME at a larger disk, "
+            "then wait() again")
 
 
 class IndexBusy(JobdeskError):
@@ -242,6 +306,8 @@ class IndexBusy(JobdeskError):
 class ConfigError(JobdeskError):
     """A jobdesk setting is invalid."""
 
+    hint = "fix the setting the message names"
+
 
 # --- mapping the libraries' exceptions to ours -------------------------------------------------
 
@@ -252,16 +318,18 @@ def from_transport(exc: BaseException, *, service: str | None = None) -> Jobdesk
         return exc
     if isinstance(exc, requests.exceptions.InvalidURL | requests.exceptions.MissingSchema
                   | requests.exceptions.InvalidSchema):
-        return BadServiceURL(f"bad service URL: {exc}", service=service)
+        return BadServiceURL("the service URL cannot be used", service=service,
+                             detail=_short(exc))
     if isinstance(exc, requests.exceptions.Timeout):
-        return ServiceUnreachable(f"the service did not answer in time ({exc.__class__.__name__})",
-                                  service=service)
+        return ServiceUnreachable("the service did not answer in time", service=service,
+                                  detail=_short(exc))
     if isinstance(exc, requests.exceptions.ConnectionError | requests.exceptions.ChunkedEncodingError):
-        return ServiceUnreachable(f"could not reach the service: {_short(exc)}", service=service)
+        return ServiceUnreachable(f"could not reach the service ({connection_cause(exc)})",
+                                  service=service, detail=_short(exc))
     if isinstance(exc, requests.exceptions.HTTPError) and exc.response is not None:
         r = exc.response
-        return ServiceRefused(f"HTTP {r.status_code} from {r.url}: {_short(r.text)}",
-                              status=r.status_code, service=service)
+        return ServiceRefused(f"the service answered HTTP {r.status_code}", status=r.status_code,
+                              service=service, detail=_short(r.text))
     if isinstance(exc, OSError) and exc.errno in (errno.ENOSPC, errno.EDQUOT):
         return StorageFull(f"no space left writing the cache: {exc}")
     if isinstance(exc, sqlite3.OperationalError) and "disk is full" in str(exc):
@@ -269,6 +337,24 @@ def from_transport(exc: BaseException, *, service: str | None = None) -> Jobdesk
     if isinstance(exc, sqlite3.OperationalError) and "locked" in str(exc):
         return IndexBusy(f"the jobdesk index is locked: {exc}")
     return JobdeskError(f"{exc.__class__.__name__}: {exc}", service=service)
+
+
+def connection_cause(exc: BaseException) -> str:
+    """A connection failure in a few plain words, read from the library's text."""
+    text = str(exc).lower()
+    if "refused" in text:
+        return "connection refused: nothing listens at that address and port"
+    if "name or service not known" in text or "nodename nor servname" in text \
+            or "failed to resolve" in text or "getaddrinfo" in text:
+        return "the host name does not resolve"
+    if "reset" in text or "aborted" in text or "remotedisconnected" in text \
+            or "closed connection" in text:
+        return "the connection was cut"
+    if "timed out" in text or "timeout" in text:
+        return "no answer in time"
+    if isinstance(exc, requests.exceptions.ChunkedEncodingError):
+        return "the answer broke off"
+    return "no connection"
 
 
 def _short(value: object, limit: int = 300) -> str:

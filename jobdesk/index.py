@@ -41,11 +41,15 @@ JOB_COLUMNS: dict[str, type] = {
     "error": str, "notebook": str, "user": str, "host": str, "requests": int, "owner": str,
     "lease_until": float, "layer": str, "warnings": str, "server": str, "estimate": str,
     "analysis": str, "result_fmt": str, "fetch": str,
+    "unreachable_since": float, "last_error": str, "error_detail": str, "next_try": float,
+    "send_tries": int, "service_started": float, "service_finished": float,
 }
 
 MIGRATIONS: list[Callable[[sqlite_utils.Database], None]] = []
 # added to jobs by a later migration, not by the first
-_LATER_COLUMNS = ("estimate", "analysis", "result_fmt", "fetch")
+_LATER_COLUMNS = ("estimate", "analysis", "result_fmt", "fetch", "unreachable_since",
+                  "last_error", "error_detail", "next_try", "send_tries", "service_started",
+                  "service_finished")
 
 
 def _migration(fn: Callable[[sqlite_utils.Database], None]) -> Callable:
@@ -161,6 +165,21 @@ def _sidebar_sort_indexes(db: sqlite_utils.Database) -> None:
                  ("analysis", "created")):
         db.execute(f"CREATE INDEX IF NOT EXISTS idx_jobs_{'_'.join(cols)} "
                    f"ON jobs ({', '.join(cols)})")
+
+
+@_migration
+def _unreachable_state(db: sqlite_utils.Database) -> None:
+    # "The service is unreachable, retrying": since when, the last error in our words and the
+    # raw text under it, when the next try is due, and how many times creating the job failed.
+    # And the service's own startTime/endTime of the job (UWS 1.1 §2.2.1), for durations that
+    # are the service's, not when this side happened to look.
+    # (idempotent, as the migrations before it: a file may already have a column)
+    have = {row[1] for row in db.execute("PRAGMA table_info(jobs)").fetchall()}
+    for name, kind in (("unreachable_since", "FLOAT"), ("last_error", "TEXT"),
+                       ("error_detail", "TEXT"), ("next_try", "FLOAT"), ("send_tries", "INTEGER"),
+                       ("service_started", "FLOAT"), ("service_finished", "FLOAT")):
+        if name not in have:
+            db.execute(f"ALTER TABLE jobs ADD COLUMN {name} {kind}")
 
 
 SCHEMA_VERSION = len(MIGRATIONS)

@@ -103,7 +103,8 @@ class Progress:
             hook()
 
     def update(self, phase: str, elapsed: float, rows: int | None, note: str = "") -> None:
-        changed = phase != self.phase
+        # An outage starting or ending is news too (a log shows it, not only phase changes).
+        changed = phase != self.phase or bool(note) != bool(self.note)
         self.phase, self.elapsed, self.rows, self.note = phase, elapsed, rows, note
         self._show(changed)
 

@@ -41,6 +41,7 @@ from jobdesk.errors import (
     JobdeskError,
     JobFailed,
     JobLost,
+    NotATapService,
     QueryRejected,
     ServiceRefused,
     ServiceResponseInvalid,
@@ -99,11 +100,13 @@ class Downloaded:
 class _RetryableStatus(Exception):
     """An HTTP answer worth another try (5xx, 429); carries what the final error needs."""
 
-    def __init__(self, status: int, message: str, retry_after: float | None):
+    def __init__(self, status: int, message: str, retry_after: float | None,
+                 detail: str | None = None):
         super().__init__(f"HTTP {status}")
         self.status = status
         self.message = message
         self.retry_after = retry_after
+        self.detail = detail
 
 
 class _BodyCut(Exception):
@@ -232,7 +235,8 @@ class Remote:
 
     def wait(self, job_url: str, *, deadline: float | None = None,
              on_status: Callable[[JobStatus], None] | None = None,
-             known: JobStatus | None = None) -> JobStatus:
+             known: JobStatus | None = None,
+             on_trouble: Callable[[JobdeskError], None] | None = None) -> JobStatus:
         """Follow the job until a terminal phase or ``deadline`` (a ``time.monotonic()`` value).
 
         Uses UWS 1.1 blocking WAIT when the job document says version 1.1 and the service is seen
@@ -242,7 +246,8 @@ class Remote:
         last status is returned: the caller decides what that means.
 
         ``known`` is the status the caller last read (from an earlier call): waiting then starts
-        with a blocking read instead of a plain one, saving a request per call.
+        with a blocking read instead of a plain one, saving a request per call.  ``on_trouble``
+        hears of every transient failure as it happens, so the caller can say so at once.
         """
         last: JobStatus | None = known
         blocking: bool | None = None if known is None else _at_least_1_1(known.uws_version)
@@ -276,6 +281,8 @@ class Remote:
                 if isinstance(exc, ServiceRefused) and not _is_transient_status(exc.status):
                     raise
                 failures += 1
+                if on_trouble is not None:
+                    on_trouble(exc)
                 out_of_time = deadline is not None and time.monotonic() >= deadline
                 if (deadline is None and failures >= self.attempts) or (out_of_time and last is None):
                     raise
@@ -563,10 +570,10 @@ class Remote:
         response = self.session.request(method, url, **kw)
         self.requests += len(response.history)  # each redirect hop was a request too
         if _is_transient_status(response.status_code):
-            message = _response_message(response)
+            message, detail = _answer(response)
             retry_after = _retry_after(response.headers.get("Retry-After"))
             response.close()
-            raise _RetryableStatus(response.status_code, message, retry_after)
+            raise _RetryableStatus(response.status_code, message, retry_after, detail)
         return response
 
     def _retrying(self) -> Retrying:
@@ -594,10 +601,13 @@ class Remote:
         try:
             return retrying(fn)
         except _RetryableStatus as exc:
+            said = f": {exc.message}" if exc.message else ""
             raise ServiceRefused(
-                self._scrub(f"{self.service} answered HTTP {exc.status} to {method} "
-                            f"{_public_url(url)} {self.attempts} time(s): {exc.message}"),
-                status=exc.status, service=self.service) from None
+                self._scrub(f"{self.service} answered HTTP {exc.status} "
+                            f"({_status_words(exc.status)}) to {method} {_public_url(url)} "
+                            f"{self.attempts} time(s){said}"),
+                status=exc.status, service=self.service,
+                detail=self._scrub(exc.detail) if exc.detail else None) from None
         except _BodyCut as exc:
             raise ServiceUnreachable(
                 self._scrub(f"the download from {_public_url(url)} kept breaking off after "
@@ -609,6 +619,7 @@ class Remote:
             err = from_transport(exc, service=self.service)
             err.message = self._scrub(f"{err.message} ({method} {_public_url(url)}, "
                                       f"{self.attempts} tries)")
+            err.detail = self._scrub(err.detail) if err.detail else None
             err.args = (err.message,)
             raise err from None
 
@@ -628,14 +639,18 @@ class Remote:
         status = response.status_code
         if status < 400:
             return
-        message = self._scrub(_response_message(response))
+        message, detail = _answer(response)
+        message = self._scrub(message)
+        detail = self._scrub(detail) if detail else None
         response.close()
         where = _public_url(response.url or "")
+        said = f": {message}" if message else ""
         if lost_on_404 and status in (404, 410):
-            raise JobLost(f"the service no longer knows {where} (HTTP {status}, {what}): {message}",
-                          service=self.service)
-        raise ServiceRefused(f"{self.service} refused {what}: HTTP {status} from {where}: {message}",
-                             status=status, service=self.service)
+            raise JobLost(f"the service no longer knows {where} (HTTP {status}, {what}){said}",
+                          service=self.service, detail=detail)
+        raise ServiceRefused(f"{self.service} refused {what}: HTTP {status} "
+                             f"({_status_words(status)}) from {where}{said}",
+                             status=status, service=self.service, detail=detail)
 
     def _window(self, deadline: float | None) -> int:
         """Seconds for one blocking WAIT: the configured window, cut at the deadline."""
@@ -723,6 +738,10 @@ def _job_status(url: str, body: bytes, service: str, *, base: str | None = None)
 
 
 def _parse_xml(body: bytes, service: str, what: str) -> Element:
+    if _is_web_page(body):
+        raise NotATapService(f"a web page came back where a {what} was expected: {service} is "
+                             "not a TAP service, or a login page is in the way",
+                             service=service, detail=_page_text(body))
     try:
         return SafeET.fromstring(body)
     except (ParseError, DefusedXmlException, ValueError) as exc:
@@ -873,6 +892,46 @@ def _document_message(body: bytes) -> str:
         except (ParseError, DefusedXmlException, ValueError):
             pass
     return text
+
+
+def _is_web_page(body: bytes, content_type: str | None = None) -> bool:
+    """An HTML page (a portal, a login form, a proxy's error page), not a protocol document."""
+    if content_type and "html" in content_type.lower():
+        return True
+    head = body[:512].lstrip().lower()
+    return head.startswith((b"<!doctype html", b"<html")) or b"<html" in head[:200]
+
+
+def _page_text(body: bytes) -> str:
+    """The readable text of a web page, short (for ``detail``)."""
+    text = body[:65536].decode("utf-8", errors="replace")
+    text = re.sub(r"(?is)<(script|style)\b.*?</\1>", " ", text)
+    return _shorten(" ".join(re.sub(r"<[^>]{0,500}>", " ", text).split()))
+
+
+_STATUS_WORDS = {400: "bad request", 401: "login required", 403: "forbidden", 404: "not found",
+                 405: "method not allowed", 410: "gone", 413: "request too large",
+                 429: "too many requests", 500: "internal error", 502: "bad gateway",
+                 503: "service unavailable", 504: "gateway timeout"}
+
+
+def _status_words(status: int) -> str:
+    """The reason phrase of an HTTP status (RFC 9110 §15), lower-case."""
+    return _STATUS_WORDS.get(status, "server error" if status >= 500 else "refused")
+
+
+def _answer(response: requests.Response) -> tuple[str, str | None]:
+    """An error answer as (the service's own words worth showing, raw detail).
+
+    A web page (HTML error or login page) is not shown as a message: its text goes to detail.
+    """
+    try:
+        body = response.content[:65536]
+    except requests.exceptions.RequestException:
+        return "", None
+    if _is_web_page(body, response.headers.get("Content-Type")):
+        return "the answer is a web page, not a service message", _page_text(body)
+    return _response_message(response), None
 
 
 def _response_message(response: requests.Response) -> str:

@@ -257,7 +257,7 @@ def test_job_destroyed_before_fetch_is_reported_lost(tmp_path):
         tap.configure(lose_jobs=True)
         with pytest.raises(JobLost) as info:
             job.wait(progress=False)
-        assert "refresh=True" in str(info.value)
+        assert "resend" in str(info.value)  # the next step is named
         assert job.phase == phases.LOST
         tap.configure(lose_jobs=False)
         assert desk.submit(tap.url, CONE).id != job.id, "a lost job is not reused"
@@ -397,7 +397,7 @@ def test_cli_lists_shows_and_exports(tap, tmp_path):
     out = tmp_path / "x.parquet"
     assert cli("export", job.id, str(out)).returncode == 0 and out.exists()
     missing = cli("show", "nope")
-    assert missing.returncode == 2 and "no job" in missing.stderr
+    assert missing.returncode == 1 and "no job" in missing.stderr  # JobNotFound: status 1
 
     # Truncation reads "truncated" in the list, as in the API (``Job.truncated``), never "CUT".
     with pytest.warns(ResultTruncatedWarning):

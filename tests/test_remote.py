@@ -19,6 +19,8 @@ from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from urllib.parse import parse_qs, urlsplit
 
 import pytest
+
+import jobdesk
 import requests
 from astropy.io import votable
 from astropy.table import Table
@@ -566,11 +568,13 @@ def test_entity_expansion_is_refused():
         remote_mod._job_status("http://h/j", bomb, "http://h")
 
 
-def test_an_html_page_is_invalid_with_a_snippet():
+def test_an_html_page_is_not_a_tap_service_with_its_text_in_detail():
     page = b"<!DOCTYPE html><html><body><p>Sign in<br></body></html>"
     with pytest.raises(ServiceResponseInvalid) as caught:
         remote_mod._job_status("http://h/j", page, "http://h")
-    assert "Sign in" in str(caught.value)
+    assert isinstance(caught.value, jobdesk.NotATapService)
+    assert "not a TAP service" in str(caught.value) and "<" not in caught.value.message
+    assert "Sign in" in caught.value.detail
 
 
 def test_retry_after_takes_seconds_or_an_http_date():

@@ -20,6 +20,27 @@ from jobdesk.server.poller import Poller
 __all__ = ["ChangeFeed", "DeskRunner", "Poller", "routes"]
 
 
+SIDEBAR_MISSING = ("the jobdesk sidebar is not built: building it needs Node.js 20+ and npm at "
+                   "install time. Install them, then run `pip install -e .` again; the library, "
+                   "the command line and the REST API work without it.")
+
+
+def sidebar_built() -> bool:
+    """Whether the sidebar's bundle is there: beside the package (a source checkout) or where
+    Jupyter looks for installed lab extensions."""
+    from pathlib import Path
+
+    here = Path(__file__).resolve().parents[1] / "labextension" / "package.json"
+    if here.exists():
+        return True
+    try:
+        from jupyter_core.paths import jupyter_path
+    except ImportError:
+        return False
+    return any((Path(p) / "jobdesk-labextension" / "package.json").exists()
+               for p in jupyter_path("labextensions"))
+
+
 def _jupyter_server_extension_points() -> list[dict]:
     return [{"module": "jobdesk.server"}]
 
@@ -47,6 +68,8 @@ def _load_jupyter_server_extension(serverapp) -> None:
     _stop_on_exit(serverapp, poller, runner)
     serverapp.log.info("jobdesk: REST API at %s, poller every %ss (desk root %s)",
                        base, poller.interval, runner.root_label)
+    if not sidebar_built():
+        serverapp.log.warning("jobdesk: %s", SIDEBAR_MISSING)
 
 
 def _stop_on_exit(serverapp, poller: Poller, runner: DeskRunner) -> None:

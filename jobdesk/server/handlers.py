@@ -16,9 +16,15 @@ Routes::
     GET    groups?by=notebook|analysis&phase=..   jobs, cached jobs, bytes, rows per group
     GET    jobs/<id>                 {"job": {...}, "history": [...], "provenance": {...}|null}
     DELETE jobs/<id>                 forget the record               {"forgotten": id}
+    PATCH  jobs/<id>                 {"label": "..."}: Desk.set_label {"job": {...}}
     POST   jobs/<id>/abort           abort on the service            {"job": {...}}
+    POST   jobs/<id>/resend          Desk.resend: same query, new job {"job": {...}}
+    POST   jobs/<id>/pin             {"pinned": bool}: Desk.pin      {"job": {...}, "pinned": b}
+    POST   jobs/<id>/export          {"path": "rel/file.fits"}: Job.export, under the server's
+                                     root directory             {"written": [...]}
     GET    jobs/<id>/preview?rows=N  columns, first rows, totals     (from the cache, no kernel)
     GET    jobs/<id>/snippet         {"snippet": "python source"}
+    GET    jobs/<id>/code            {"code": "python that sends the query again"}
     GET    analyses                  {"analyses": Desk.analyses()}
     GET    analyses/steps?name=NAME  {"name", "jobs": [records in step order], "plans": [...]}
     GET    plans/<id>                a re-run plan: steps, states, failures
@@ -46,12 +52,15 @@ import tornado.web
 from jupyter_server.base.handlers import APIHandler
 
 from jobdesk import phases
-from jobdesk.errors import BadServiceURL, JobdeskError, ResultUnavailable, ServiceError
+from jobdesk.errors import (
+    BadServiceURL, JobdeskError, JobNotFound, ResultUnavailable, ServiceError,
+)
 from jobdesk.index import GROUPINGS, SORTS
 from jobdesk.keys import service_id
 
 JOB_ID = re.compile(r"^[0-9a-f]{6,64}$")
-KNOWN_PHASES = frozenset(phases.UWS_PHASES) | {phases.UNSENT, phases.SUBMITTED, phases.LOST}
+KNOWN_PHASES = frozenset(phases.UWS_PHASES) | {phases.UNSENT, phases.SUBMITTED, phases.LOST,
+                                               phases.UNREACHED}
 MAX_PAGE = 500
 MAX_PREVIEW_ROWS = 200
 
@@ -160,13 +169,16 @@ class DeskHandler(APIHandler):
         """Run a Desk call; map unknown ids and jobdesk errors to HTTP answers."""
         try:
             return await self.runner.run(fn, *args, **kwargs)
+        except JobNotFound as exc:
+            raise _Answer(404, {"message": exc.message, "hint": exc.hint,
+                                "error": "JobNotFound"}) from None
         except KeyError as exc:
             raise _Answer(404, {"message": f"no such job: {exc.args[0] if exc.args else ''}"})
         except JobdeskError as exc:
             status = (409 if isinstance(exc, ResultUnavailable)
                       else 502 if isinstance(exc, ServiceError) else 409)
             raise _Answer(status, {"message": exc.message, "hint": exc.hint,
-                                   "error": type(exc).__name__})
+                                   "detail": exc.detail, "error": type(exc).__name__})
 
     def write_error(self, status_code: int, **kwargs) -> None:
         exc = kwargs.get("exc_info", (None, None, None))[1]
@@ -260,8 +272,17 @@ def _details(desk, job_id: str) -> dict:
         provenance, why = job.provenance(), None
     except JobdeskError as exc:  # no result yet, or it failed: the record still shows
         provenance, why = None, exc.message
+    from jobdesk.desk import service_duration, unreachable_note
+    failed = job.failure()
     return {"job": job.record, "history": history, "provenance": provenance,
-            "provenance_missing": why}
+            "provenance_missing": why,
+            # What went wrong in our words and what to do next; the service's own message is
+            # the record's ``error``.
+            "problem": None if failed is None else {
+                "error": type(failed).__name__, "message": failed.message, "hint": failed.hint,
+                "detail": failed.detail or job.record.get("error_detail")},
+            "unreachable": unreachable_note(job.record) or None,
+            "service_seconds": service_duration(job.record)}
 
 
 def _abort(desk, job_id: str) -> dict:
@@ -270,9 +291,35 @@ def _abort(desk, job_id: str) -> dict:
 
 
 def _forget(desk, job_id: str) -> dict:
-    desk.job(job_id)  # KeyError (404) when unknown
-    desk.forget(job_id)
+    desk.forget(job_id)  # JobNotFound (404) when unknown
     return {"forgotten": job_id}
+
+
+def _resend(desk, job_id: str) -> dict:
+    return {"job": desk.resend(job_id).record, "from": job_id}
+
+
+def _pin(desk, job_id: str, pinned: bool) -> dict:
+    desk.pin(job_id, pinned=pinned)
+    return {"job": desk.job(job_id).record, "pinned": pinned}
+
+
+def _label(desk, job_id: str, label: str | None) -> dict:
+    return {"job": desk.set_label(job_id, label).record}
+
+
+def _export(desk, job_id: str, path) -> dict:
+    return {"written": [str(p) for p in desk.job(job_id).export(path, allow_truncated=True)]}
+
+
+def _body(handler: DeskHandler) -> dict:
+    try:
+        body = json.loads(handler.request.body or b"{}")
+    except ValueError:
+        raise tornado.web.HTTPError(400, reason="the body must be JSON") from None
+    if not isinstance(body, dict):
+        raise tornado.web.HTTPError(400, reason="the body must be a JSON object")
+    return body
 
 
 class JobsHandler(DeskHandler):
@@ -301,6 +348,42 @@ class JobHandler(DeskHandler):
     @tornado.web.authenticated
     async def delete(self, raw_id: str) -> None:
         self.reply(await self.call(_forget, self.job_id(raw_id)))
+
+    @tornado.web.authenticated
+    async def patch(self, raw_id: str) -> None:
+        label = _body(self).get("label")
+        if label is not None and (not isinstance(label, str) or len(label) > 500):
+            raise tornado.web.HTTPError(400, reason="label must be a string (500 chars at most)")
+        self.reply(await self.call(_label, self.job_id(raw_id), (label or "").strip() or None))
+
+
+class ResendHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def post(self, raw_id: str) -> None:
+        self.reply(await self.call(_resend, self.job_id(raw_id)))
+
+
+class PinHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def post(self, raw_id: str) -> None:
+        pinned = _body(self).get("pinned", True)
+        if not isinstance(pinned, bool):
+            raise tornado.web.HTTPError(400, reason="pinned must be true or false")
+        self.reply(await self.call(_pin, self.job_id(raw_id), pinned))
+
+
+class ExportHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def post(self, raw_id: str) -> None:
+        import pathlib
+
+        raw = _body(self).get("path")
+        rel = pathlib.PurePosixPath(raw) if isinstance(raw, str) and raw.strip() else None
+        if rel is None or rel.is_absolute() or ".." in rel.parts:
+            raise tornado.web.HTTPError(400, reason="path must be relative, inside the server's "
+                                                    "root directory")
+        root = pathlib.Path(self.settings.get("server_root_dir") or ".").expanduser()
+        self.reply(await self.call(_export, self.job_id(raw_id), root / rel))
 
 
 class AbortHandler(DeskHandler):
@@ -416,6 +499,13 @@ class QuickLookHandler(DeskHandler):
         super(APIHandler, self).finish(svg)  # APIHandler.finish would say application/json
 
 
+class CodeHandler(DeskHandler):
+    @tornado.web.authenticated
+    async def get(self, raw_id: str) -> None:
+        job_id = self.job_id(raw_id)
+        self.reply({"code": await self.call(lambda desk: desk.job(job_id).query_code())})
+
+
 class CacheHandler(DeskHandler):
     @tornado.web.authenticated
     async def get(self) -> None:
@@ -443,8 +533,12 @@ def routes() -> list[tuple[str, type[DeskHandler]]]:
         (r"jobs", JobsHandler),
         (one, JobHandler),
         (one + r"/abort", AbortHandler),
+        (one + r"/resend", ResendHandler),
+        (one + r"/pin", PinHandler),
+        (one + r"/export", ExportHandler),
         (one + r"/preview", PreviewHandler),
         (one + r"/snippet", SnippetHandler),
+        (one + r"/code", CodeHandler),
         (r"analyses", AnalysesHandler),
         (r"analyses/steps", AnalysisStepsHandler),
         (r"plans/([^/]+)", PlanHandler),

@@ -9,6 +9,7 @@ import {
   TERMINAL,
   firstLine,
   formatBytes,
+  formatDuration,
   formatRows,
   formatWhen,
   hostOf,
@@ -90,7 +91,7 @@ export class JobDetails extends Widget {
           this.header(this.known),
           problem,
           section('Query', pre(this.known.adql)),
-          section('Facts', this.facts(this.known))
+          section('Facts', this.facts(this.known, null))
         );
       }
       return;
@@ -106,9 +107,13 @@ export class JobDetails extends Widget {
     this.node.replaceChildren(
       this.header(job),
       section('Query', pre(job.adql)),
-      section('Facts', this.facts(job)),
+      section('Facts', this.facts(job, details)),
       section('Phase history', this.history(details))
     );
+    const trouble = this.trouble(job, details);
+    if (trouble) {
+      this.node.insertBefore(trouble, this.node.children[1] || null);
+    }
     if (job.phase === 'COMPLETED' && job.parquet_sha256) {
       const holder = section('Preview', para('jd-muted', 'Reading the cached result…'));
       this.node.append(holder);
@@ -157,19 +162,71 @@ export class JobDetails extends Widget {
     if (!TERMINAL.has(job.phase)) {
       tools.append(action('Abort', () => this.actions.abort(job)));
     }
-    tools.append(action('Reload', () => void this.load()));
+    if (job.phase === 'COMPLETED' && job.parquet_sha256) {
+      tools.append(action('Export…', () => this.actions.exportResult(job)));
+    }
+    tools.append(
+      action('Pin', () => this.actions.pin(job)),
+      action('Edit label…', () => this.actions.editLabel(job)),
+      action('Reload', () => void this.load())
+    );
     head.append(phaseBadge(job.phase), title, tools);
     return head;
   }
 
-  private facts(job: IJobRecord): HTMLElement {
+  /** For a failed job: the service's message, our hint, and the next steps; for a job whose
+   * service is silent: since when and when the next try is. */
+  private trouble(job: IJobRecord, details: IJobDetails): HTMLElement | null {
+    if (!details.problem && !details.unreachable) {
+      return null;
+    }
+    const node = document.createElement('section');
+    node.className = 'jd-trouble';
+    node.append(heading(details.problem ? 'What happened' : 'Service unreachable'));
+    if (details.unreachable) {
+      node.append(para('jd-error jd-unreachable', details.unreachable));
+      if (job.last_error) {
+        node.append(para('jd-muted', job.last_error));
+      }
+    }
+    if (details.problem) {
+      node.append(
+        para('jd-error jd-service-message', job.error || details.problem.message),
+        para('jd-hint', `What to do: ${details.problem.hint}`)
+      );
+      const steps = document.createElement('div');
+      steps.className = 'jd-row-tools jd-next-steps';
+      steps.append(
+        action('Send again', () => this.actions.resend(job)),
+        action('Edit in a notebook', () => this.actions.editInNotebook(job)),
+        action('Forget', () => this.actions.forget(job))
+      );
+      node.append(steps);
+      if (details.problem.detail) {
+        const more = document.createElement('details');
+        const summary = document.createElement('summary');
+        summary.textContent = 'Technical detail';
+        more.append(summary, pre(details.problem.detail));
+        node.append(more);
+      }
+    }
+    return node;
+  }
+
+  private facts(job: IJobRecord, details: IJobDetails | null): HTMLElement {
+    const ran = details?.service_seconds;
     const rows: Array<[string, string]> = [
       ['Job id', job.id],
       ['Service', `${hostOf(job.service)} (${job.service})`],
       ['Service job', job.job_url || '—'],
       ['Created', formatWhen(job.created)],
-      ['Started', formatWhen(job.started)],
-      ['Finished', formatWhen(job.finished)],
+      ['Started', formatWhen(job.service_started || job.started)],
+      ['Finished', formatWhen(job.service_finished || job.finished)],
+      [
+        'Ran on the service',
+        ran === null || ran === undefined ? '— (the service gave no start and end times)'
+          : `${formatDuration(ran)} (the service's startTime to endTime)`
+      ],
       ['Rows', formatRows(job.rows) + (job.truncated ? ' — truncated, not the full answer' : '')],
       ['Size', formatBytes(job.result_bytes)],
       ['Estimate', estimateText(job) || '—'],

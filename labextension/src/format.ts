@@ -84,14 +84,32 @@ export interface IJobTimes {
   submitted?: number | null;
   started?: number | null;
   finished?: number | null;
+  unreachable_since?: number | null;
+  next_try?: number | null;
+  service_started?: number | null;
+  service_finished?: number | null;
 }
 
 /**
  * "queued 12 s" only while QUEUED ("pending 4 s", "not sent yet, 9 s", ... otherwise), then
  * "running 3 min 02 s" / "ran 3 min 02 s"; a job that ended before it started "ended after".
+ * While the service does not answer: "service unreachable for 40 s, retrying (next try in 5 s)".
+ * A finished job whose service gave startTime and endTime: how long it ran by that clock.
  */
 export function timeWords(job: IJobTimes, now: number): string {
   const active = !TERMINAL.has(job.phase);
+  if (active && job.unreachable_since) {
+    const next = job.next_try
+      ? ` (next try in ${formatDuration(Math.max(0, job.next_try - now))})` : '';
+    return `service unreachable for ${formatDuration(now - job.unreachable_since)}, retrying${next}`;
+  }
+  if (job.phase === 'UNREACHED') {
+    return 'never reached the service';
+  }
+  if (!active && job.service_started && job.service_finished) {
+    // The service's own clock (UWS startTime to endTime), not when this side looked.
+    return `ran ${formatDuration(job.service_finished - job.service_started)} (service clock)`;
+  }
   const start = job.started || (job.phase === 'EXECUTING' ? job.submitted : null);
   if (start) {
     return `${active ? 'running' : 'ran'} ${formatDuration((job.finished || now) - start)}`;

@@ -8,7 +8,14 @@ import {
   JupyterFrontEnd,
   JupyterFrontEndPlugin
 } from '@jupyterlab/application';
-import { Clipboard, Dialog, MainAreaWidget, Notification, showDialog } from '@jupyterlab/apputils';
+import {
+  Clipboard,
+  Dialog,
+  InputDialog,
+  MainAreaWidget,
+  Notification,
+  showDialog
+} from '@jupyterlab/apputils';
 import { INotebookTracker, NotebookActions } from '@jupyterlab/notebook';
 import { ISettingRegistry } from '@jupyterlab/settingregistry';
 
@@ -106,6 +113,71 @@ const plugin: JupyterFrontEndPlugin<void> = {
           Notification.error(`Abort failed: ${(err as Error).message}`);
         }
       },
+      async resend(job) {
+        try {
+          const fresh = await model.resend(job.id);
+          Notification.info(`Sent again as a new job: ${title(fresh)}`, { autoClose: 4000 });
+          actions.openDetails(fresh);
+        } catch (err) {
+          Notification.error(`Sending again failed: ${(err as Error).message}`);
+        }
+      },
+      async editInNotebook(job) {
+        const panel = notebooks?.currentWidget;
+        if (!panel) {
+          Notification.warning('Open a notebook first: the query goes below its active cell.', {
+            autoClose: 5000
+          });
+          return;
+        }
+        try {
+          const code = await model.queryCode(job.id);
+          NotebookActions.insertBelow(panel.content);
+          panel.content.activeCell?.model.sharedModel.setSource(code.trimEnd());
+          app.shell.activateById(panel.id);
+        } catch (err) {
+          Notification.error(`Could not get the query: ${(err as Error).message}`);
+        }
+      },
+      async pin(job) {
+        try {
+          await model.pin(job.id, true);
+          Notification.info(`Pinned: ${title(job)} stays through every prune.`, { autoClose: 4000 });
+        } catch (err) {
+          Notification.error(`Pin failed: ${(err as Error).message}`);
+        }
+      },
+      async exportResult(job) {
+        const answer = await InputDialog.getText({
+          title: 'Export the result with its provenance',
+          label: 'File (relative to the server root; .fits .vot .parquet .csv)',
+          text: `${job.id}.fits`
+        });
+        if (!answer.button.accept || !answer.value) {
+          return;
+        }
+        try {
+          const written = await model.exportTo(job.id, answer.value);
+          Notification.success(`Exported: ${written.join(', ')}`, { autoClose: 6000 });
+        } catch (err) {
+          Notification.error(`Export failed: ${(err as Error).message}`);
+        }
+      },
+      async editLabel(job) {
+        const answer = await InputDialog.getText({
+          title: 'Label',
+          text: job.label || ''
+        });
+        if (!answer.button.accept) {
+          return;
+        }
+        try {
+          await model.setLabel(job.id, answer.value || '');
+          openDetails.get(job.id)?.content.load();
+        } catch (err) {
+          Notification.error(`Label change failed: ${(err as Error).message}`);
+        }
+      },
       async forget(job) {
         const answer = await showDialog({
           title: 'Forget this job?',
@@ -141,8 +213,11 @@ const plugin: JupyterFrontEndPlugin<void> = {
       if (!prefs.notifications || !(await claimAnnouncement(announcementKey(job)))) {
         return;
       }
-      const ran = (job.finished || Date.now() / 1000) - (job.started || job.created);
-      const words = `${title(job)} — ${job.phase.toLowerCase()} after ${formatDuration(ran)}` +
+      // The duration said is the service's own (startTime to endTime), when it gave one.
+      const own = job.service_started && job.service_finished
+        ? ` after ${formatDuration(job.service_finished - job.service_started)} on the service`
+        : '';
+      const words = `${title(job)} — ${job.phase.toLowerCase()}${own}` +
         (job.rows !== null && job.rows !== undefined ? `, ${formatRows(job.rows)}` : '');
       const buttons: Array<{ label: string; callback: () => void; caption?: string }> = [
         { label: 'Open details', caption: 'Show this job in the main area', callback: () => actions.openDetails(job) }

@@ -39,6 +39,11 @@ export interface IJobRecord {
   layer?: string | null;
   warnings?: string[] | null;
   analysis?: string | null; // the first analysis the job joined (see src/analyses.ts)
+  unreachable_since?: number | null;
+  last_error?: string | null;
+  next_try?: number | null;
+  service_started?: number | null;
+  service_finished?: number | null;
   [other: string]: unknown;
 }
 
@@ -55,6 +60,12 @@ export interface IJobDetails {
   history: Array<{ phase: string; at: number; note?: string | null }>;
   provenance: unknown;
   provenance_missing?: string | null;
+  /** What went wrong, in jobdesk's words, and what to do next (failed jobs only). */
+  problem?: { error: string; message: string; hint: string; detail?: string | null } | null;
+  /** "service unreachable for 40 s, retrying (next try in 5 s)" while the service is silent. */
+  unreachable?: string | null;
+  /** How long the job ran by the service's own clock (startTime to endTime), if it said. */
+  service_seconds?: number | null;
 }
 
 export interface IPreview {
@@ -327,6 +338,47 @@ export class JobDeskModel {
     this.total = Math.max(0, this.total - 1);
     this._active.delete(id);
     this._changed.emit();
+  }
+
+  /** Python that sends a job's query again (to edit in a notebook before running it). */
+  async queryCode(id: string): Promise<string> {
+    const answer = await this.request<{ code: string }>(`jobs/${encodeURIComponent(id)}/code`);
+    return answer.code;
+  }
+
+  /** Send a failed or unreached job's query again: same query, a new job. */
+  async resend(id: string): Promise<IJobRecord> {
+    const answer = await this.request<{ job: IJobRecord }>(
+      `jobs/${encodeURIComponent(id)}/resend`,
+      { method: 'POST' }
+    );
+    await this.refresh();
+    return answer.job;
+  }
+
+  async pin(id: string, pinned: boolean): Promise<void> {
+    await this.request(`jobs/${encodeURIComponent(id)}/pin`, {
+      method: 'POST',
+      body: JSON.stringify({ pinned })
+    });
+  }
+
+  async setLabel(id: string, label: string): Promise<IJobRecord> {
+    const answer = await this.request<{ job: IJobRecord }>(`jobs/${encodeURIComponent(id)}`, {
+      method: 'PATCH',
+      body: JSON.stringify({ label })
+    });
+    this.replace(answer.job);
+    return answer.job;
+  }
+
+  /** Write the result with its provenance to `path`, relative to the server's root directory. */
+  async exportTo(id: string, path: string): Promise<string[]> {
+    const answer = await this.request<{ written: string[] }>(
+      `jobs/${encodeURIComponent(id)}/export`,
+      { method: 'POST', body: JSON.stringify({ path }) }
+    );
+    return answer.written;
   }
 
   /** Call the REST API under `<base>/jobdesk/api/`; JSON in, JSON out, errors as exceptions. */

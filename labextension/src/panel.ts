@@ -30,6 +30,11 @@ export interface IPanelActions {
   copySnippet(job: IJobRecord): void;
   abort(job: IJobRecord): void;
   forget(job: IJobRecord): void;
+  resend(job: IJobRecord): void;
+  editInNotebook(job: IJobRecord): void;
+  pin(job: IJobRecord): void;
+  exportResult(job: IJobRecord): void;
+  editLabel(job: IJobRecord): void;
 }
 
 export class JobDeskPanel extends Widget {

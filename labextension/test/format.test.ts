@@ -100,6 +100,15 @@ describe('the words', () => {
       .toBe('ended after 5 s');
   });
 
+  it('says when the service does not answer, and uses the service clock when it gave one', () => {
+    expect(timeWords({ phase: 'SUBMITTED', created, unreachable_since: now - 40, next_try: now + 5 },
+      now)).toBe('service unreachable for 40 s, retrying (next try in 5 s)');
+    expect(timeWords({ phase: 'UNREACHED', created, finished: now }, now))
+      .toBe('never reached the service');
+    expect(timeWords({ phase: 'ERROR', created, finished: now, service_started: created + 10,
+      service_finished: created + 25 }, now)).toBe('ran 15 s (service clock)');
+  });
+
   it('counts naturally', () => {
     expect(plural(1, 'result')).toBe('1 result');
     expect(plural(1200, 'result')).toBe('1,200 results');

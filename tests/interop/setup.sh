@@ -3,6 +3,12 @@
 # for tests/interop.  Idempotent: a second run reuses the packages, the database, the imported
 # table and a server that already answers.  Needs root (apt-get, su).  Stop it with stop.sh.
 #
+# It never takes over a DaCHS it did not install: an installation found without this script's
+# marker is left exactly as it is (no configuration written, no restart), and the script exits
+# with status 3, saying why; scripts/test then skips the interop tests with that reason.
+# `setup.sh --check` only says whose installation is there (ours, foreign, absent) and changes
+# nothing.
+#
 # Environment: JOBDESK_INTEROP_PORT (default 8791).  Prints the TAP URL on its last line.
 set -euo pipefail
 
@@ -13,9 +19,40 @@ RD_SRC="$HERE/rd/q.rd"
 RD_DIR=/var/gavo/inputs/driftcat
 STATE_DIR="${JOBDESK_INTEROP_STATE:-/tmp/jobdesk-interop}"   # what we started, for stop.sh
 export DEBIAN_FRONTEND=noninteractive
+# Written when this script installs DaCHS (or finds the configuration it wrote itself): the
+# proof that the installation is ours to configure and restart.
+MARKER="${JOBDESK_INTEROP_MARKER:-/var/lib/jobdesk-interop/installed-by-setup.sh}"
+GAVO_RC="${JOBDESK_INTEROP_GAVO_RC:-/etc/gavo.rc}"
+OUR_HEADER="# written by jobdesk tests/interop/setup.sh"
 
 log() { echo "[interop setup +${SECONDS}s] $*" >&2; }
 die() { echo "[interop setup] FAILED: $*" >&2; exit 1; }
+
+# --- 0. whose DaCHS is this? ------------------------------------------------------------------
+dachs_installed() {
+    [[ -f "$GAVO_RC" ]] || { dpkg -s gavodachs2-server 2>/dev/null | grep -q '^Status: install ok installed'; }
+}
+ownership() {   # ours | foreign | absent
+    if [[ -f "$MARKER" ]]; then echo ours
+    elif [[ -f "$GAVO_RC" ]] && [[ "$(head -1 "$GAVO_RC")" == "$OUR_HEADER" ]]; then echo ours
+    elif dachs_installed; then echo foreign
+    else echo absent
+    fi
+}
+owner="$(ownership)"
+if [[ "${1:-}" == "--check" ]]; then
+    echo "$owner"
+    exit 0
+fi
+if [[ "$owner" == foreign ]]; then
+    echo "[interop setup] SKIPPED: a DaCHS installation not made by this script is on this machine" \
+         "(no $MARKER, and $GAVO_RC was not written by it); it is left untouched. Run the interop" \
+         "tests on a machine without DaCHS, or point them at that server yourself with" \
+         "JOBDESK_INTEROP_PORT if it serves the test table." >&2
+    exit 3
+fi
+mark_ours() { mkdir -p "$(dirname "$MARKER")" && echo "installed by jobdesk tests/interop/setup.sh" > "$MARKER"; }
+[[ "$owner" == ours ]] && [[ ! -f "$MARKER" ]] && mark_ours
 
 mkdir -p "$STATE_DIR"
 
@@ -35,9 +72,9 @@ maxTAPRunning: 3
 defaultExecTime: 600
 EOF
 )"
-    if [[ ! -f /etc/gavo.rc ]] || [[ "$(cat /etc/gavo.rc)" != "$want" ]]; then
-        printf '%s\n' "$want" > /etc/gavo.rc
-        log "wrote /etc/gavo.rc (port $PORT)"
+    if [[ ! -f "$GAVO_RC" ]] || [[ "$(cat "$GAVO_RC")" != "$want" ]]; then
+        printf '%s\n' "$want" > "$GAVO_RC"
+        log "wrote $GAVO_RC (port $PORT)"
         return 0
     fi
     return 1
@@ -90,6 +127,7 @@ Package: postgresql-15 postgresql-client-15
 Pin: release l=Debian-Security
 Pin-Priority: -1
 PIN
+mark_ours   # from here on the installation is this script's (absent before, or ours already)
 if write_gavo_rc; then touch "$STATE_DIR/config-changed"; fi
 if ! command -v pg_ctlcluster >/dev/null || [[ -z "$(pg_cluster)" ]]; then
     apt_install postgresql

@@ -211,3 +211,43 @@ def test_change_feed_answers_at_once_for_a_stale_token(seeded):
     jp, _, _ = seeded
     body = get(jp, "changes?since=0:0").json()
     assert body["changed"] is True and body["token"] != "0:0"
+
+
+# --- unknown ids and the actions on a failed job --------------------------------------------
+
+
+def post(jp, path, body=None):
+    return requests.post(jp.url(f"jobdesk/api/{path}"), headers=jp.auth, json=body, timeout=30)
+
+
+@pytest.mark.parametrize("method,path", [
+    ("GET", ""), ("DELETE", ""), ("PATCH", ""), ("POST", "/abort"), ("POST", "/resend"),
+    ("POST", "/pin"), ("POST", "/export"), ("GET", "/snippet"),
+])
+def test_unknown_id_is_404_with_our_message(seeded, method, path):
+    jp, _, _ = seeded
+    body = {"label": "x"} if method == "PATCH" else {"path": "out.fits"} if "export" in path \
+        else None
+    answer = requests.request(method, jp.url(f"jobdesk/api/jobs/ffffffffffffffff{path}"),
+                              headers=jp.auth, json=body, timeout=30)
+    assert answer.status_code == 404, (method, path, answer.text)
+    said = answer.json()
+    assert said["error"] == "JobNotFound" and "no job 'ffffffffffffffff'" in said["message"]
+    assert said["hint"]
+
+
+def test_label_and_pin_of_a_failed_job_go_through_the_library(seeded):
+    jp, index, _ = seeded
+    failed = index.insert(_record(20_000, phase="ERROR", error="the service said no"))
+    answer = requests.patch(jp.url(f"jobdesk/api/jobs/{failed['id']}"), headers=jp.auth,
+                            json={"label": "  renamed  "}, timeout=30)
+    assert answer.status_code == 200, answer.text
+    assert answer.json()["job"]["label"] == "renamed" == index.get(failed["id"])["label"]
+    pinned = post(jp, f"jobs/{failed['id']}/pin", {"pinned": True})
+    assert pinned.status_code == 200 and pinned.json()["pinned"] is True
+    assert post(jp, f"jobs/{failed['id']}/pin", {"pinned": "yes"}).status_code == 400
+    # a failed job has no result to export: the library says so, in our words
+    export = post(jp, f"jobs/{failed['id']}/export", {"path": "out.fits"})
+    assert export.status_code == 409 and "the service said no" in export.json()["message"]
+    for bad in ("../out.fits", "/etc/out.fits", ""):
+        assert post(jp, f"jobs/{failed['id']}/export", {"path": bad}).status_code == 400
