@@ -172,22 +172,21 @@ def test_cli_analyses_rerun_compare(tap, desk, tmp_path, capsys):
 
 
 def test_index_from_before_analyses_is_migrated_and_keeps_its_jobs(tmp_path):
-    import sqlite3
+    import sqlite_utils
 
     from jobdesk.index import MIGRATIONS, Index, _add_analyses_and_plans
     path = tmp_path / "index.sqlite"
-    index = Index(path)
-    index.insert({"id": "00112233aabbccdd", "key": "k" * 64, "service": "http://x.invalid/tap",
-                  "adql": "SELECT 1", "phase": "COMPLETED", "created": 1.0})
-    index.close()
-    conn = sqlite3.connect(path)
-    conn.execute("DROP TABLE analysis_steps")
-    conn.execute("DROP TABLE plans")
-    conn.execute("ALTER TABLE jobs DROP COLUMN analysis")
-    # the schema before analyses (later migrations may follow it in MIGRATIONS)
-    conn.execute(f"PRAGMA user_version = {MIGRATIONS.index(_add_analyses_and_plans)}")
-    conn.commit()
-    conn.close()
+    # The schema exactly as it was before analyses: the migrations up to that one, run in order.
+    before = MIGRATIONS.index(_add_analyses_and_plans)
+    db = sqlite_utils.Database(path)
+    for step in MIGRATIONS[:before]:
+        step(db)
+    db.execute(f"PRAGMA user_version = {before}")
+    db.execute("INSERT INTO jobs (id, key, service, adql, phase, created) VALUES "
+               "('00112233aabbccdd', ?, 'http://x.invalid/tap', 'SELECT 1', 'COMPLETED', 1.0)",
+               ["k" * 64])
+    db.conn.commit()
+    db.close()
     index = Index(path)
     assert index.get("00112233aabbccdd")["analysis"] is None
     assert index.add_step("a", "00112233aabbccdd") == 1 and index.analyses()[0]["steps"] == 1
