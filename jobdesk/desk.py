@@ -171,7 +171,7 @@ class Desk:
             self._refuse_bad(sid, adql)
         measured = None
         if estimate:
-            measured = self.estimate(sid, adql, maxrec=maxrec, fmt=fmt or formats.DEFAULT)
+            measured = self.estimate(sid, adql, maxrec=maxrec, fmt=fmt)
             _show_estimate(measured)
         canonical = keys.canonical_adql(adql)
         _warn_not_repeatable(canonical.warnings)
@@ -362,11 +362,12 @@ class Desk:
         return query_checks.check(adql, metadata.CachedCatalog(self.index, sid), wide=wide,
                                   huge=huge)
 
-    def estimate(self, service, adql: str, *, maxrec: int | None = None, fmt: str = "votable",
+    def estimate(self, service, adql: str, *, maxrec: int | None = None, fmt: str | None = None,
                  time_limit: float = cost.TIME_LIMIT):
         """Predicted rows (a COUNT(*) run synchronously within ``time_limit`` seconds, else a
-        TOP-limited sample), bytes in ``fmt``, whether MAXREC or the service's output limit
-        cut it, and a duration range from this service's past jobs (``jobdesk.estimate``)."""
+        TOP-limited sample), bytes in ``fmt`` (by default the format a job would negotiate),
+        whether MAXREC or the service's output limit cut it, and a duration range from this
+        service's past jobs (``jobdesk.estimate``)."""
         url, session = self._unwrap(service)
         sid = keys.service_id(url)
         if session is not None:
@@ -378,6 +379,8 @@ class Desk:
         remote = self._remote(sid)
         caps = self._capabilities(sid)
         output = caps.get("output_limit") or {}
+        if fmt is None:
+            fmt = formats.choose(self._capabilities(sid, output_formats=True))
         try:
             return cost.measure(adql, remote.sync, fmt=fmt, maxrec=maxrec,
                                 default_maxrec=output.get("default"),

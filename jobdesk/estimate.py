@@ -164,9 +164,15 @@ def count_value(body: bytes) -> int | None:
 
 
 def sample_rows(body: bytes) -> int | None:
-    """Rows in a sample answer (VOTable in any serialization, or CSV/TSV)."""
+    """Rows in a sample answer (VOTable in any serialization, VOParquet, or CSV/TSV)."""
     from astropy.io.votable import parse_single_table
     import io
+    if body[:4] == b"PAR1":
+        import pyarrow.parquet as pq
+        try:
+            return pq.read_metadata(io.BytesIO(body)).num_rows
+        except Exception:                   # noqa: BLE001 - a cut file: no figure
+            return None
     try:
         return len(parse_single_table(io.BytesIO(body), verify="ignore").array)
     except Exception:                       # noqa: BLE001

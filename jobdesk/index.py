@@ -154,7 +154,9 @@ def _add_result_format(db: sqlite_utils.Database) -> None:
 def _fetch_progress_column(db: sqlite_utils.Database) -> None:
     # A result being fetched says how far it got (JSON: stage, bytes, total, rows, percent),
     # so the sidebar and other processes can show it (see jobdesk/transfer.py).
-    db.execute("ALTER TABLE jobs ADD COLUMN fetch TEXT")
+    # (idempotent, as the migrations before it: a file may already have the column)
+    if "fetch" not in {row[1] for row in db.execute("PRAGMA table_info(jobs)").fetchall()}:
+        db.execute("ALTER TABLE jobs ADD COLUMN fetch TEXT")
 
 
 @_migration

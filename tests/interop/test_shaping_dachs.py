@@ -99,7 +99,9 @@ def test_no_false_error_on_any_query_the_interop_tests_run(desk):
             continue
         # the checker said "error": the server must refuse it too
         assert server_refuses(adql) is not None, (adql, [str(f) for f in found])
-    assert clean >= len(queries) - 2      # the two unknown-column cases are meant to fail
+    # Only queries written to fail (unknown columns, bad syntax) may be flagged; each flagged one
+    # was refused by the server above, so this bound only keeps the check from saying nothing.
+    assert clean >= len(queries) // 2, (clean, len(queries))
 
 
 def test_unknown_column_caught_locally_and_by_the_server_at_the_same_token(desk):
