@@ -137,3 +137,68 @@ export class RerunProgress extends Widget {
 
   private _timer = 0;
 }
+
+/**
+ * Every analysis of this desk with its re-runs, each re-run drawn step by step (RerunProgress),
+ * for the main area. It only reads `analyses` and `plans/<id>`; it starts nothing.
+ */
+export class AnalysesView extends Widget {
+  constructor(private readonly model: JobDeskModel) {
+    super();
+    this.id = 'jobdesk-analyses';
+    this.addClass('jp-jobdesk-analyses');
+    this.title.label = 'Analyses and re-runs';
+    this.title.closable = true;
+    void this.load();
+  }
+
+  async load(): Promise<void> {
+    this.node.replaceChildren();
+    let analyses: IAnalysis[];
+    try {
+      analyses = await listAnalyses(this.model);
+    } catch (error) {
+      this.node.textContent = `Cannot read the analyses: ${(error as Error).message}`;
+      return;
+    }
+    const heading = document.createElement('h2');
+    heading.textContent = 'Analyses and re-runs';
+    this.node.appendChild(heading);
+    if (!analyses.length) {
+      const empty = document.createElement('p');
+      empty.textContent =
+        'No analyses yet: submit with analysis="name" (or inside `with desk.analysis("name"):`), ' +
+        'then desk.rerun("name", rename={...}) makes a re-run that shows here.';
+      this.node.appendChild(empty);
+      return;
+    }
+    for (const analysis of analyses) {
+      const section = document.createElement('section');
+      section.className = 'jp-jobdesk-analysis';
+      section.dataset.analysis = analysis.name;
+      const name = document.createElement('h3');
+      name.textContent = `${analysis.name} · ${analysis.steps} step${analysis.steps === 1 ? '' : 's'}`;
+      section.appendChild(name);
+      if (!analysis.plans.length) {
+        const none = document.createElement('p');
+        none.textContent = 'No re-run of this analysis yet.';
+        section.appendChild(none);
+      }
+      for (const planId of analysis.plans) {
+        const progress = new RerunProgress(this.model, planId);
+        this._children.push(progress);
+        section.appendChild(progress.node);
+      }
+      this.node.appendChild(section);
+    }
+  }
+
+  dispose(): void {
+    for (const child of this._children) {
+      child.dispose();
+    }
+    super.dispose();
+  }
+
+  private _children: RerunProgress[] = [];
+}

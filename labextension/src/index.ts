@@ -19,6 +19,7 @@ import {
 import { INotebookTracker, NotebookActions } from '@jupyterlab/notebook';
 import { ISettingRegistry } from '@jupyterlab/settingregistry';
 
+import { AnalysesView } from './analyses';
 import { announcementKey, claimAnnouncement } from './announce';
 
 import { JobDetails } from './details';
@@ -62,6 +63,7 @@ const plugin: JupyterFrontEndPlugin<void> = {
     }
     const model = new JobDeskModel();
     const openDetails = new Map<string, MainAreaWidget<JobDetails>>();
+    let analysesView: MainAreaWidget<AnalysesView> | null = null;
 
     const title = (job: IJobRecord) => job.label || firstLine(job.adql).slice(0, 60) || job.id;
 
@@ -178,6 +180,20 @@ const plugin: JupyterFrontEndPlugin<void> = {
           Notification.error(`Label change failed: ${(err as Error).message}`);
         }
       },
+      openAnalyses() {
+        if (analysesView && !analysesView.isDisposed) {
+          void analysesView.content.load();
+          app.shell.activateById(analysesView.id);
+          return;
+        }
+        const content = new AnalysesView(model);
+        analysesView = new MainAreaWidget({ content });
+        analysesView.id = 'jobdesk-analyses-area';
+        analysesView.title.label = 'Analyses and re-runs';
+        analysesView.title.icon = jobdeskIcon;
+        app.shell.add(analysesView, 'main');
+        app.shell.activateById(analysesView.id);
+      },
       async forget(job) {
         const answer = await showDialog({
           title: 'Forget this job?',
@@ -269,6 +285,12 @@ const plugin: JupyterFrontEndPlugin<void> = {
       },
       true
     );
+
+    app.commands.addCommand('jobdesk:analyses', {
+      label: 'Show analyses and release re-runs',
+      icon: jobdeskIcon,
+      execute: () => actions.openAnalyses()
+    });
 
     app.commands.addCommand('jobdesk:open', {
       label: 'Show the Job desk',

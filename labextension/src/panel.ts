@@ -35,6 +35,7 @@ export interface IPanelActions {
   pin(job: IJobRecord): void;
   exportResult(job: IJobRecord): void;
   editLabel(job: IJobRecord): void;
+  openAnalyses(): void;
 }
 
 export class JobDeskPanel extends Widget {
@@ -119,7 +120,11 @@ export class JobDeskPanel extends Widget {
     });
     const reload = button('⟳', 'Reload the list', () => void this.model.refresh());
     reload.classList.add('jd-reload');
-    bar.append(this.phaseSelect, this.search, reload);
+    const reruns = button('Re-runs', 'Analyses and their release re-runs, step by step', () =>
+      this.actions.openAnalyses()
+    );
+    reruns.classList.add('jd-reruns');
+    bar.append(this.phaseSelect, this.search, reload, reruns);
     return bar;
   }
 
