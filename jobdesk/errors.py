@@ -200,6 +200,18 @@ class JobNotFound(JobdeskError, KeyError):
         self.job_id = job_id
 
 
+class JobIdAmbiguous(JobNotFound):
+    """A short job id that begins more than one recorded job id."""
+
+    hint = "give more characters of the id (the candidates are listed above)"
+
+    def __init__(self, prefix: str, candidates: list[str], root: object = None, **kw):
+        JobdeskError.__init__(self, f"{prefix!r} begins several job ids: {', '.join(candidates)}",
+                              **kw)
+        self.job_id = prefix
+        self.candidates = candidates
+
+
 class WaitTimeout(JobdeskError, TimeoutError):
     """``wait(timeout=...)`` ran out before the job finished; the job goes on running."""
 

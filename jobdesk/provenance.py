@@ -14,6 +14,8 @@ import json
 import platform
 from importlib import metadata
 
+from jobdesk import phases
+
 PROV_NS = "https://jobdesk.invalid/ns/prov#"
 
 
@@ -195,12 +197,21 @@ def account(prov: dict) -> str:
         "",
         "    " + (prov.get("adql") or "").strip().replace("\n", "\n    "),
         "",
-        f"The query returned {prov.get('rows')} rows"
-        + (" (TRUNCATED by a row or time limit: incomplete)" if prov.get("truncated") else "")
-        + f"; the result file has SHA-256 {prov.get('result_sha256')}.",
+        (f"The query returned {prov.get('rows')} rows"
+         + (" (TRUNCATED by a row or time limit: incomplete)" if prov.get("truncated") else "")
+         + f"; the result file has SHA-256 {prov.get('result_sha256')}.")
+        if prov.get("result_sha256") and prov.get("rows") is not None else
+        f"There is no result: the job {_no_result(prov.get('phase'))}, so no rows were "
+        "returned and no result file exists.",
         f"Retrieved with jobdesk {prov['software'].get('jobdesk', '')} (job {prov.get('job_url')}).",
     ]
     return "\n".join(lines)
+
+
+def _no_result(phase: str | None) -> str:
+    if phase in phases.TERMINAL:
+        return f"ended {phase} without one"
+    return f"is {phase} and has none yet"
 
 
 def fits_cards(prov: dict) -> list[tuple[str, str, str]]:
