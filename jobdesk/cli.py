@@ -151,9 +151,9 @@ def cmd_submit(args) -> int:
 
 def cmd_wait(args) -> int:
     desk = _desk(args)
-    ids = [desk.resolve(i) for i in args.ids] or [j.id for j in desk.jobs(phase=sorted(phases.ACTIVE | {phases.COMPLETED}),
-                                               limit=None)
-                       if not j.ready]
+    ids = [desk.resolve(i) for i in args.ids] or [
+        j.id for j in desk.jobs(phase=sorted(phases.ACTIVE | {phases.COMPLETED}), limit=None)
+        if not j.ready]
     if not ids and not args.json:
         print("nothing is running")
     failed = 0
@@ -463,7 +463,8 @@ def cmd_rerun(args) -> int:
 
 def cmd_compare(args) -> int:
     desk = _desk(args)
-    result = desk.compare(desk.resolve(args.old), desk.resolve(args.new), key=args.key, tolerance=args.tolerance)
+    result = desk.compare(desk.resolve(args.old), desk.resolve(args.new), key=args.key,
+                          tolerance=args.tolerance)
     if args.report:
         result.report(args.report)
     if args.json:

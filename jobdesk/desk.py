@@ -24,8 +24,9 @@ from jobdesk import (analyses, formats, keys, metadata, phases, provenance, resu
                      voparquet)
 from jobdesk import uploads as upload_tables
 from jobdesk.errors import (
-    BadServiceURL, CacheCorrupt, ConfigError, GroupCacheWarning, JobAborted, JobdeskError, JobFailed, JobLost,
-    JobIdAmbiguous, JobNotFound, JobUnreached, MetadataUnavailable, MetadataWarning, NotRepeatableWarning,
+    BadServiceURL, CacheCorrupt, ConfigError, GroupCacheWarning, JobAborted, JobdeskError, JobFailed,
+    JobIdAmbiguous, JobLost, JobNotFound, JobUnreached, MetadataUnavailable, MetadataWarning,
+    NotRepeatableWarning,
     QueryCheckWarning, QueryEmpty, QueryRejected, SyncTimeout, UnknownTable, ResultTruncated,
     ResultTruncatedWarning, ResultUnavailable, ServiceRefused, ServiceResponseInvalid,
     ServiceUnreachable, WaitTimeout,

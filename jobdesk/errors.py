@@ -305,8 +305,8 @@ class ExportTargetExists(ExportRefused):
 class StorageFull(JobdeskError):
     """The disk holding the cache is full or over quota; nothing half-written was kept."""
 
-    hint = ("free space (desk.prune(dry_run=False)) or point JOBDESK_HOME at a larger disk, "
-            "then wait() again")
+    hint = ("free space (`jobdesk prune`, or desk.prune(dry_run=False)) or point JOBDESK_HOME "
+            "at a larger disk, then wait() again")
 
 
 class IndexBusy(JobdeskError):
