@@ -178,6 +178,7 @@ def test_account_of_a_failed_job_says_there_is_no_result(made, capsys):
     assert code == 0
     assert "None rows" not in out and "SHA-256 None" not in out
     assert "There is no result: the job ended ERROR" in out
+    assert "Data were selected" not in out and "SELECT no_such_column" in out
     code, out, _ = run(capsys, root, "account", made["done"], "--json")
     told = json.loads(out)
     assert told["id"] == made["done"] and "rows; the result file has SHA-256" in told["account"]
