@@ -1,6 +1,10 @@
-"""The ``jobdesk`` command: a thin skin over ``Desk``, one subcommand per Desk method.
+"""The ``jobdesk`` command: a thin skin over ``Desk``, one subcommand per Desk method, with
+the library's words; every command takes ``--json`` where a script might read the output.
 
-Every listing takes ``--json`` so scripts can read it.
+Exit status: 0 done; 1 no such job (``JobNotFound``, also for an ambiguous short id) or the
+outcome was a failure (a job failed, a check found errors); 2 the command could not be carried
+out as given (bad arguments, a refusal with the reason). ``python -m jobdesk.cli --reference``
+prints docs/cli.md from the parser below.
 """
 
 from __future__ import annotations
@@ -9,14 +13,49 @@ import argparse
 import datetime as _dt
 import json
 import sys
+from urllib.parse import urlsplit
 
 from jobdesk import phases
 from jobdesk.errors import JobdeskError, JobNotFound
+
+DESCRIPTION = ("Send ADQL queries to TAP services as jobs that survive restarts, follow them, "
+               "and keep, export and explain their results.")
+EXIT_NOT_FOUND = 1      # JobNotFound, everywhere an id is taken
+EXIT_USAGE = 2          # what argparse uses for bad arguments
+KNOWN_PHASES = (*phases.UWS_PHASES, phases.UNSENT, phases.SUBMITTED, phases.LOST,
+                phases.UNREACHED)
 
 
 def _desk(args):
     from jobdesk.desk import Desk
     return Desk(args.root)
+
+
+def _job(desk, text: str):
+    """The job an id or a unique prefix of one names (``JobNotFound``/``JobIdAmbiguous``)."""
+    return desk.job(desk.resolve(text))
+
+
+def _phase(text: str) -> str:
+    """A phase name in any case; an unknown one is refused with the known ones."""
+    name = text.strip().upper()
+    if name not in KNOWN_PHASES:
+        raise argparse.ArgumentTypeError(f"unknown phase {text!r}; known phases: "
+                                         + ", ".join(KNOWN_PHASES))
+    return name
+
+
+def _short_service(url: str | None) -> str:
+    """host/path of a service URL, cut to fit a column."""
+    if not url:
+        return "-"
+    parts = urlsplit(url)
+    text = (parts.netloc + parts.path) or url
+    return text if len(text) <= 28 else text[:27] + "~"
+
+
+def _dump(value) -> None:
+    print(json.dumps(value, indent=1, default=str))
 
 
 def _when(ts) -> str:
@@ -41,7 +80,7 @@ def _row(job) -> str:
     rows = "-" if r.get("rows") is None else str(r["rows"])
     mark = " truncated" if r.get("truncated") else ""
     line = (f"{r['id']}  {r['phase']:<10} {rows:>9}{mark:<10} {_size(r.get('result_bytes')):>9}  "
-            f"{_when(r['created'])}  {job.title[:50]}")
+            f"{_when(r['created'])}  {_short_service(r.get('service')):<28}  {job.title[:50]}")
     note = unreachable_note(r)
     if note:
         line += f"\n{'':18}{note}: {r.get('last_error') or ''}"
@@ -58,9 +97,11 @@ def cmd_list(args) -> int:
         print(json.dumps([j.record for j in jobs], indent=1))
         return 0
     if not jobs:
-        print(f"no jobs recorded in {desk.root}")
+        print(f"no jobs match in {desk.root}" if (args.phase or args.service or args.text)
+              else f"no jobs recorded in {desk.root}")
         return 0
-    print(f"{'id':<16}  {'phase':<10} {'rows':>9}{'':<10} {'size':>9}  {'created':<16}  query")
+    print(f"{'id':<16}  {'phase':<10} {'rows':>9}{'':<10} {'size':>9}  {'created':<16}  "
+          f"{'service':<28}  query")
     for job in jobs:
         print(_row(job))
     total = desk.count(phase=args.phase, service=args.service, text=args.text)
@@ -70,7 +111,7 @@ def cmd_list(args) -> int:
 
 
 def cmd_show(args) -> int:
-    job = _desk(args).job(args.id)
+    job = _job(_desk(args), args.id)
     if args.provenance:
         print(json.dumps(job.provenance(), indent=1))
         return 0
@@ -82,7 +123,10 @@ def cmd_show(args) -> int:
     for name in ("id", "phase", "service", "job_url", "label", "rows", "truncated",
                  "result_bytes", "requests", "error", "error_detail", "notebook"):
         if r.get(name) is not None:
-            print(f"{name:>13}: {r[name]}")
+            value = r[name]
+            if name == "truncated":
+                value = "yes" if value else "no"
+            print(f"{name:>13}: {value}")
     if unreachable_note(r):
         print(f"{'unreachable':>13}: {unreachable_note(r)}")
     if r["phase"] in (phases.ERROR, phases.ABORTED, phases.LOST, phases.UNREACHED):
@@ -107,54 +151,130 @@ def cmd_submit(args) -> int:
 
 def cmd_wait(args) -> int:
     desk = _desk(args)
-    ids = args.ids or [j.id for j in desk.jobs(phase=sorted(phases.ACTIVE | {phases.COMPLETED}),
-                                               limit=None)
-                       if not j.ready]
-    if not ids:
+    ids = [desk.resolve(i) for i in args.ids] or [
+        j.id for j in desk.jobs(phase=sorted(phases.ACTIVE | {phases.COMPLETED}), limit=None)
+        if not j.ready]
+    if not ids and not args.json:
         print("nothing is running")
     failed = 0
+    records = []
     for job_id in ids:
         job = desk.job(job_id)
+        if job.ready:   # finished already: nothing to wait for, one line
+            records.append(job.record)
+            if not args.json:
+                print(_row(job))
+            continue
         if job.phase == phases.UNREACHED:
             print(f"{job_id}: skipped: the service was never reached and no job exists there; "
                   f"`jobdesk resend {job_id}` or `jobdesk forget {job_id}`", file=sys.stderr)
             continue
         try:
-            job.wait(timeout=args.timeout)
+            job.wait(timeout=args.timeout, progress=not args.json)
         except JobdeskError as exc:
             failed += 1
             print(f"{job_id}: {exc}", file=sys.stderr)
-        print(_row(job))
+        records.append(job.record)
+        if not args.json:
+            print(_row(job))
+    if args.json:
+        _dump(records)
     return 1 if failed else 0
 
 
-def cmd_abort(args) -> int:
-    print(_row(_desk(args).abort(args.id)))
+def _one_job(args, act) -> int:
+    """Resolve the id, run ``act(desk, full_id) -> Job``, print the job's line or record."""
+    desk = _desk(args)
+    job = act(desk, desk.resolve(args.id))
+    if args.json:
+        _dump(job.record)
+    else:
+        print(_row(job))
     return 0
+
+
+def cmd_abort(args) -> int:
+    return _one_job(args, lambda desk, job_id: desk.abort(job_id))
 
 
 def cmd_resend(args) -> int:
-    job = _desk(args).resend(args.id)
-    print(_row(job))
-    return 0
+    return _one_job(args, lambda desk, job_id: desk.resend(job_id))
 
 
 def cmd_forget(args) -> int:
-    gone = _desk(args).forget(args.id)
-    print(f"forgot {args.id}" if gone else f"no job {args.id}")
-    return 0 if gone else 1
+    desk = _desk(args)
+    job_id = desk.resolve(args.id)
+    gone = desk.forget(job_id)   # JobNotFound (status 1) for an unknown id, as everywhere
+    if args.json:
+        _dump({"id": job_id, "forgotten": gone})
+    else:
+        print(f"forgot {job_id}" if gone else f"no job {job_id}")
+    return 0 if gone else EXIT_NOT_FOUND
 
 
 def cmd_export(args) -> int:
-    written = _desk(args).job(args.id).export(args.path, allow_truncated=args.allow_truncated,
-                                               name=args.name, overwrite=args.overwrite)
+    job = _job(_desk(args), args.id)
+    written = job.export(args.path, allow_truncated=args.allow_truncated, fmt=args.format,
+                         name=args.name, overwrite=args.overwrite)
+    if args.json:
+        _dump({"id": job.id, "written": [str(p) for p in written]})
+        return 0
     for path in written:
         print(path)
     return 0
 
 
 def cmd_account(args) -> int:
-    print(_desk(args).job(args.id).account())
+    job = _job(_desk(args), args.id)
+    if args.json:
+        _dump({"id": job.id, "account": job.account()})
+    else:
+        print(job.account())
+    return 0
+
+
+def cmd_provenance(args) -> int:
+    from jobdesk.provenance import to_prov_json
+    job = _job(_desk(args), args.id)
+    # --json is accepted for the same words everywhere: the output is JSON either way.
+    _dump(job.provenance() if args.jobdesk else to_prov_json(job.provenance()))
+    return 0
+
+
+def cmd_pin(args) -> int:
+    desk = _desk(args)
+    job_id = desk.resolve(args.id)
+    desk.pin(job_id, pinned=not args.unpin)
+    if args.json:
+        _dump({"id": job_id, "pinned": not args.unpin})
+    else:
+        print(f"{'unpinned' if args.unpin else 'pinned'} {job_id}"
+              + ("" if args.unpin else ": prune keeps its record and files"))
+    return 0
+
+
+def cmd_publish(args) -> int:
+    desk = _desk(args)
+    job_id = desk.resolve(args.id)
+    where = desk.publish(job_id, group=args.group)
+    if args.json:
+        _dump({"id": job_id, "published": where})
+    else:
+        print(f"published {job_id} to {where}")
+    return 0
+
+
+def cmd_prune(args) -> int:
+    days = None if args.older_than_days is None else args.older_than_days * 86400
+    done = _desk(args).prune(max_bytes=args.max_bytes, older_than=days, dry_run=args.dry_run)
+    if args.json:
+        _dump(done)
+        return 0
+    for job_id in done["dropped"]:
+        print(f"{'would drop' if args.dry_run else 'dropped'} record {job_id}")
+    print(f"{len(done['dropped'])} records, {len(done['removed'])} files, {_size(done['freed'])} "
+          f"{'would be freed (dry run)' if args.dry_run else 'freed'}"
+          + (f"; {len(done['pinned'])} pinned kept" if done["pinned"] else ""))
     return 0
 
 
@@ -168,21 +288,6 @@ def cmd_cache(args) -> int:
         count = "?" if results is None else f"{results} result{'' if results == 1 else 's'}"
         print(f"{layer['name']:<12} {count:>12}  {_size(layer['bytes']):>9}  {layer['location']}")
     return 0
-
-
-def _group_layer(args):
-    """The named group of this desk (or its only one), or a location given with --location."""
-    from jobdesk.groups import Group
-    from jobdesk.groups.layer import GroupLayer
-    if args.location:
-        return GroupLayer(Group(args.location, readonly=not getattr(args, "write", False)))
-    layers = _desk(args).groups.layers
-    if args.group:
-        return next(layer for layer in layers if layer.name == args.group)
-    if len(layers) != 1:
-        raise KeyError("name the group cache: --group NAME (or --location PATH_OR_URL); "
-                       f"this desk has {[layer.name for layer in layers]}")
-    return layers[0]
 
 
 def _report(report, args, verb: str) -> int:
@@ -201,21 +306,23 @@ def _report(report, args, verb: str) -> int:
 
 def cmd_group_add_to_index(args) -> int:
     desk = _desk(args)
-    added = desk.groups.add_to_index(desk.index)
-    print(f"{added} group results newly listed in {desk.root}")
+    added = desk.group_add_to_index()
+    if args.json:
+        _dump({"added": added, "root": str(desk.root)})
+    else:
+        print(f"{added} group results newly listed in {desk.root}")
     return 0
 
 
 def cmd_group_verify(args) -> int:
-    from jobdesk.groups.maintain import verify
-    return _report(verify(_group_layer(args), hashes=not args.quick), args, "checked")
+    report = _desk(args).group_verify(args.group, location=args.location, hashes=not args.quick)
+    return _report(report, args, "checked")
 
 
 def cmd_group_prune(args) -> int:
-    from jobdesk.groups.maintain import prune
-    args.write = not args.dry_run
     days = None if args.older_than_days is None else args.older_than_days * 86400
-    report = prune(_group_layer(args), older_than=days, dry_run=args.dry_run)
+    report = _desk(args).group_prune(args.group, location=args.location, older_than=days,
+                                     dry_run=args.dry_run)
     _report(report, args, "would remove" if args.dry_run else "removed")
     return 0
 
@@ -232,8 +339,15 @@ def _query_text(source: str | None) -> str:
     """The ADQL of ``check``/``estimate``: a file, or standard input for ``-`` or nothing."""
     if source in (None, "-"):
         return sys.stdin.read()
-    with open(source, encoding="utf-8") as f:
-        return f.read()
+    try:
+        with open(source, encoding="utf-8") as f:
+            return f.read()
+    except OSError as exc:
+        raise _Usage(f"cannot read the query file {source}: {exc.strerror or exc}") from None
+
+
+class _Usage(Exception):
+    """An argument the command cannot use (exit status 2, like argparse's own refusals)."""
 
 
 def cmd_tables(args) -> int:
@@ -348,7 +462,9 @@ def cmd_rerun(args) -> int:
 
 
 def cmd_compare(args) -> int:
-    result = _desk(args).compare(args.old, args.new, key=args.key, tolerance=args.tolerance)
+    desk = _desk(args)
+    result = desk.compare(desk.resolve(args.old), desk.resolve(args.new), key=args.key,
+                          tolerance=args.tolerance)
     if args.report:
         result.report(args.report)
     if args.json:
@@ -381,12 +497,16 @@ def cmd_demo(args) -> int:
 
 
 def parser() -> argparse.ArgumentParser:
-    p = argparse.ArgumentParser(prog="jobdesk", description=__doc__.splitlines()[0])
+    p = argparse.ArgumentParser(
+        prog="jobdesk", description=DESCRIPTION,
+        epilog="A job ID may be shortened to any prefix that names one job. Exit status: 0 "
+               "done, 1 no such job or a failed outcome, 2 bad arguments or a refusal.")
     p.add_argument("--root", help="cache root (default: $JOBDESK_HOME or the user cache dir)")
-    sub = p.add_subparsers(dest="command", required=True)
+    sub = p.add_subparsers(dest="command", required=True, metavar="COMMAND")
 
     s = sub.add_parser("list", help="list job records, newest first")
-    s.add_argument("--phase", action="append", help="only this phase (repeatable)")
+    s.add_argument("--phase", action="append", type=_phase,
+                   help="only this phase, any case (repeatable)")
     s.add_argument("--service", help="only jobs of this TAP service URL")
     s.add_argument("--text", help="search labels and queries")
     s.add_argument("--limit", type=int, default=50)
@@ -451,19 +571,32 @@ def parser() -> argparse.ArgumentParser:
     s = sub.add_parser("wait", help="wait for (resume) the given or all unfinished jobs")
     s.add_argument("ids", nargs="*")
     s.add_argument("--timeout", type=float)
+    s.add_argument("--json", action="store_true", help="the records once done, as list --json")
     s.set_defaults(func=cmd_wait)
 
-    s = sub.add_parser("abort", help="abort a job on its service")
-    s.add_argument("id")
-    s.set_defaults(func=cmd_abort)
+    for name, func, text in (
+            ("abort", cmd_abort, "abort a job on its service"),
+            ("resend", cmd_resend, "send a failed or unreached job's query again (new job)"),
+            ("forget", cmd_forget, "drop a job record"),
+            ("publish", cmd_publish, "share a finished, complete result with a group cache now"),
+            ("pin", cmd_pin, "keep a job's record and files through every prune")):
+        s = sub.add_parser(name, help=text)
+        s.add_argument("id")
+        s.add_argument("--json", action="store_true")
+        s.set_defaults(func=func)
+        if name == "publish":
+            s.add_argument("--group", help="the group cache's name (default: the first "
+                                           "read-write one)")
+        if name == "pin":
+            s.add_argument("--unpin", action="store_true", help="let prune drop it again")
 
-    s = sub.add_parser("resend", help="send a failed or unreached job's query again (new job)")
-    s.add_argument("id")
-    s.set_defaults(func=cmd_resend)
-
-    s = sub.add_parser("forget", help="drop a job record")
-    s.add_argument("id")
-    s.set_defaults(func=cmd_forget)
+    s = sub.add_parser("prune", help="shrink the personal cache: drop finished, unpinned "
+                                     "records (oldest first) and files nothing uses")
+    s.add_argument("--max-bytes", type=int, help="drop the oldest until the files fit this")
+    s.add_argument("--older-than-days", type=float, help="drop records finished longer ago")
+    s.add_argument("--dry-run", action="store_true", help="only say what would go")
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_prune)
 
     s = sub.add_parser("export", help="write a result with provenance "
                                       "(.fits .vot .parquet .h5 .csv .ecsv)")
@@ -473,11 +606,22 @@ def parser() -> argparse.ArgumentParser:
     s.add_argument("--name", help="the table's path inside an HDF5 file (default jobdesk/<id>)")
     s.add_argument("--overwrite", action="store_true",
                    help="replace an existing file (or HDF5 table)")
+    s.add_argument("--format", help="fits, votable, parquet, hdf5, csv or ecsv (default: by "
+                                    "the path's suffix)")
+    s.add_argument("--json", action="store_true", help="the paths written, as JSON")
     s.set_defaults(func=cmd_export)
 
     s = sub.add_parser("account", help="plain-text account of how a result was made")
     s.add_argument("id")
+    s.add_argument("--json", action="store_true")
     s.set_defaults(func=cmd_account)
+
+    s = sub.add_parser("provenance", help="where a result came from, as W3C PROV-JSON")
+    s.add_argument("id")
+    s.add_argument("--jobdesk", action="store_true",
+                   help="jobdesk's own provenance record instead (as show --provenance)")
+    s.add_argument("--json", action="store_true", help="accepted; the output is JSON anyway")
+    s.set_defaults(func=cmd_provenance)
 
     s = sub.add_parser("cache", help="what the cache holds")
     s.add_argument("--json", action="store_true")
@@ -487,9 +631,12 @@ def parser() -> argparse.ArgumentParser:
     gsub = g.add_subparsers(dest="group_command", required=True,
                             metavar="{add-to-index,verify,prune,init}")
     s = gsub.add_parser("add-to-index", help="list every group result in your personal index")
+    s.add_argument("--json", action="store_true")
     s.set_defaults(func=cmd_group_add_to_index)
     # The old name, hidden (no help= keeps it out of the listing): scripts that use it still run.
-    gsub.add_parser("rebuild-index").set_defaults(func=cmd_group_add_to_index)
+    s = gsub.add_parser("rebuild-index")
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_group_add_to_index)
     for name, func, text in (("verify", cmd_group_verify, "check manifests, checksums, modes"),
                              ("prune", cmd_group_prune, "remove what no manifest references")):
         s = gsub.add_parser(name, help=text)
@@ -508,6 +655,7 @@ def parser() -> argparse.ArgumentParser:
     s.add_argument("--name")
     s.add_argument("--umask", default="0002", help="group policy umask (0002 or 0022)")
     s.add_argument("--unix-group", help="group that owns the files (default: the directory's)")
+    s.add_argument("--json", action="store_true", help="accepted; the output is JSON anyway")
     s.set_defaults(func=cmd_group_init)
 
     s = sub.add_parser("analyses", help="list analyses, or one analysis's jobs in step order")
@@ -544,19 +692,60 @@ def parser() -> argparse.ArgumentParser:
     return p
 
 
+def reference() -> str:
+    """docs/cli.md: every command's usage and help, read from the parser itself."""
+    top = parser()
+    out = ["# The `jobdesk` command", "",
+           "Generated from the parser by `python -m jobdesk.cli --reference > docs/cli.md`; "
+           "tests/test_cli.py fails when this page and the code differ.", "",
+           top.description, "", top.epilog, "", "```", _usage(top), "```", ""]
+
+    def walk(p: argparse.ArgumentParser, path: str, depth: int) -> None:
+        for action in p._actions:
+            if not isinstance(action, argparse._SubParsersAction):
+                continue
+            helps = {c.dest: c.help for c in action._choices_actions}
+            for name, child in action.choices.items():
+                if name not in helps:       # an old name kept hidden for scripts
+                    continue
+                out.extend([f"{'#' * depth} `{path} {name}`", "",
+                            helps[name][0].upper() + helps[name][1:] + ".", "",
+                            "```", _usage(child), "```", ""])
+                walk(child, f"{path} {name}", depth + 1)
+
+    walk(top, "jobdesk", 2)
+    return "\n".join(out).rstrip() + "\n"
+
+
+def _usage(p: argparse.ArgumentParser) -> str:
+    """A parser's help without the terminal's width getting a say (fixed at 100 columns)."""
+    p.formatter_class = lambda prog: argparse.HelpFormatter(prog, width=100)
+    return p.format_help().rstrip()
+
+
 def main(argv: list[str] | None = None) -> int:
-    args = parser().parse_args(argv)
+    argv = sys.argv[1:] if argv is None else list(argv)
+    if argv == ["--reference"]:
+        sys.stdout.write(reference())
+        return 0
+    try:
+        args = parser().parse_args(argv)
+    except SystemExit as exc:   # --help (0) or a bad argument (2, message already printed)
+        return exc.code if isinstance(exc.code, int) else EXIT_USAGE
     try:
         return args.func(args)
-    except JobNotFound as exc:
+    except JobNotFound as exc:  # JobIdAmbiguous too: the id does not name one job
         print(f"jobdesk: {exc}", file=sys.stderr)
-        return 1
+        return EXIT_NOT_FOUND
     except JobdeskError as exc:
         print(f"jobdesk: {exc}", file=sys.stderr)
-        return 2
+        return EXIT_USAGE
+    except _Usage as exc:
+        print(f"jobdesk: {exc}", file=sys.stderr)
+        return EXIT_USAGE
     except KeyError as exc:
         print(f"jobdesk: {exc.args[0]}", file=sys.stderr)
-        return 2
+        return EXIT_USAGE
 
 
 if __name__ == "__main__":

@@ -24,8 +24,9 @@ from jobdesk import (analyses, formats, keys, metadata, phases, provenance, resu
                      voparquet)
 from jobdesk import uploads as upload_tables
 from jobdesk.errors import (
-    BadServiceURL, CacheCorrupt, GroupCacheWarning, JobAborted, JobdeskError, JobFailed, JobLost,
-    JobNotFound, JobUnreached, MetadataUnavailable, MetadataWarning, NotRepeatableWarning,
+    BadServiceURL, CacheCorrupt, ConfigError, GroupCacheWarning, JobAborted, JobdeskError, JobFailed,
+    JobIdAmbiguous, JobLost, JobNotFound, JobUnreached, MetadataUnavailable, MetadataWarning,
+    NotRepeatableWarning,
     QueryCheckWarning, QueryEmpty, QueryRejected, SyncTimeout, UnknownTable, ResultTruncated,
     ResultTruncatedWarning, ResultUnavailable, ServiceRefused, ServiceResponseInvalid,
     ServiceUnreachable, WaitTimeout,
@@ -221,6 +222,18 @@ class Desk:
             raise JobNotFound(job_id, self.root)
         return Job(self, job_id, record)
 
+    def resolve(self, job_id: str) -> str:
+        """The full id of the one record whose id is ``job_id`` or begins with it (a short id
+        for people typing); ``JobNotFound`` for none, ``JobIdAmbiguous`` for several."""
+        if job_id and self.index.get(job_id) is not None:
+            return job_id
+        found = self.index.ids_starting(job_id, limit=10) if job_id else []
+        if not found:
+            raise JobNotFound(job_id, self.root)
+        if len(found) > 1:
+            raise JobIdAmbiguous(job_id, found, self.root)
+        return found[0]
+
     def abort(self, job_id: str) -> "Job":
         """Abort a job on its service (or locally, if it was never created there)."""
         record = self.job(job_id).record
@@ -309,6 +322,45 @@ class Desk:
         from jobdesk import eviction
         return eviction.prune(self.index, self.store, self.root, max_bytes=max_bytes,
                               older_than=_seconds(older_than), dry_run=dry_run)
+
+    # --- group caches (see jobdesk.groups) ----------------------------------------------------
+
+    def group_add_to_index(self) -> int:
+        """List every group result (newest per key) in this desk's index; return how many."""
+        return self.groups.add_to_index(self.index)
+
+    def group_verify(self, group: str | None = None, *, location: str | None = None,
+                     hashes: bool = True):
+        """Check a group cache's manifests, checksums and modes (``jobdesk.groups.maintain``)."""
+        from jobdesk.groups import maintain
+        return maintain.verify(self._group_layer(group, location, write=False), hashes=hashes)
+
+    def group_prune(self, group: str | None = None, *, location: str | None = None,
+                    older_than=None, dry_run: bool = True):
+        """Remove what no manifest of a group cache references (and manifests older than
+        ``older_than``, seconds or a timedelta). Dry run by default, as ``prune``."""
+        from jobdesk.groups import maintain
+        return maintain.prune(self._group_layer(group, location, write=not dry_run),
+                              older_than=_seconds(older_than), dry_run=dry_run)
+
+    def _group_layer(self, group: str | None, location: str | None, *, write: bool):
+        """The named group cache of this desk (or its only one), or one given by location."""
+        from jobdesk.groups import Group
+        from jobdesk.groups.layer import GroupLayer
+        if location:
+            return GroupLayer(Group(location, readonly=not write))
+        if group:
+            try:
+                return self.groups.layer(group)
+            except KeyError as exc:
+                raise ConfigError(exc.args[0], hint="name one of this desk's group caches, or "
+                                  "give its path or URL with --location") from None
+        if len(self.groups.layers) != 1:
+            raise ConfigError(f"this desk has {len(self.groups.layers)} group caches "
+                              f"({self.groups.names}): say which",
+                              hint="name the group cache (--group NAME) or give its location "
+                                   "(--location PATH_OR_URL)")
+        return self.groups.layers[0]
 
     # --- shaping a query (see jobdesk.metadata, jobdesk.checks, jobdesk.estimate) --------------
 

@@ -200,6 +200,18 @@ class JobNotFound(JobdeskError, KeyError):
         self.job_id = job_id
 
 
+class JobIdAmbiguous(JobNotFound):
+    """A short job id that begins more than one recorded job id."""
+
+    hint = "give more characters of the id (the candidates are listed above)"
+
+    def __init__(self, prefix: str, candidates: list[str], root: object = None, **kw):
+        JobdeskError.__init__(self, f"{prefix!r} begins several job ids: {', '.join(candidates)}",
+                              **kw)
+        self.job_id = prefix
+        self.candidates = candidates
+
+
 class WaitTimeout(JobdeskError, TimeoutError):
     """``wait(timeout=...)`` ran out before the job finished; the job goes on running."""
 
@@ -293,8 +305,8 @@ class ExportTargetExists(ExportRefused):
 class StorageFull(JobdeskError):
     """The disk holding the cache is full or over quota; nothing half-written was kept."""
 
-    hint = ("free space (desk.prune(dry_run=False)) or point JOBDESK_HOME at a larger disk, "
-            "then wait() again")
+    hint = ("free space (`jobdesk prune`, or desk.prune(dry_run=False)) or point JOBDESK_HOME "
+            "at a larger disk, then wait() again")
 
 
 class IndexBusy(JobdeskError):

@@ -274,6 +274,13 @@ class Index:
             row = cur.fetchone()
             return None if row is None else _decode(dict(zip([d[0] for d in cur.description], row)))
 
+    def ids_starting(self, prefix: str, *, limit: int = 10) -> list[str]:
+        """Job ids that begin with ``prefix`` (a range scan on the primary key), in id order."""
+        with self._lock:
+            cur = self.db.execute("SELECT id FROM jobs WHERE id >= ? AND id < ? ORDER BY id "
+                                  "LIMIT ?", [prefix, prefix + "\U0010ffff", limit])
+            return [r[0] for r in cur.fetchall()]
+
     def history(self, job_id: str) -> list[dict]:
         with self._lock:
             cur = self.db.execute(

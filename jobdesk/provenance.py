@@ -14,6 +14,8 @@ import json
 import platform
 from importlib import metadata
 
+from jobdesk import phases
+
 PROV_NS = "https://jobdesk.invalid/ns/prov#"
 
 
@@ -186,21 +188,36 @@ def to_prov_json(prov: dict, *, exported: dict | None = None) -> dict:
 
 
 def account(prov: dict) -> str:
-    """A short plain-text account of how the table was made, to paste into a data section."""
+    """A short plain-text account of how the table was made, to paste into a data section; of
+    a job without a result, a plain statement that there is none."""
     when = (prov.get("finished") or prov.get("created") or "")[:10]
     tables = ", ".join(prov.get("tables") or []) or "the service's tables"
+    made = bool(prov.get("result_sha256")) and prov.get("rows") is not None
+    query = ["", "    " + (prov.get("adql") or "").strip().replace("\n", "\n    "), ""]
+    if not made:
+        return "\n".join([
+            f"The ADQL query below was sent on {when} to the TAP service at {prov['service']} "
+            f"({tables}):", *query,
+            f"There is no result: the job {_no_result(prov.get('phase'))}, so no rows were "
+            "returned and no result file exists.",
+            f"Sent with jobdesk {prov['software'].get('jobdesk', '')} "
+            f"(job {prov.get('job_url') or 'never created on the service'}).",
+        ])
     lines = [
         f"Data were selected on {when} from the TAP service at {prov['service']} "
-        f"({tables}) with the ADQL query:",
-        "",
-        "    " + (prov.get("adql") or "").strip().replace("\n", "\n    "),
-        "",
+        f"({tables}) with the ADQL query:", *query,
         f"The query returned {prov.get('rows')} rows"
         + (" (TRUNCATED by a row or time limit: incomplete)" if prov.get("truncated") else "")
         + f"; the result file has SHA-256 {prov.get('result_sha256')}.",
         f"Retrieved with jobdesk {prov['software'].get('jobdesk', '')} (job {prov.get('job_url')}).",
     ]
     return "\n".join(lines)
+
+
+def _no_result(phase: str | None) -> str:
+    if phase in phases.TERMINAL:
+        return f"ended {phase} without one"
+    return f"is {phase} and has none yet"
 
 
 def fits_cards(prov: dict) -> list[tuple[str, str, str]]:
