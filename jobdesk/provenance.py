@@ -219,7 +219,3 @@ def fits_cards(prov: dict) -> list[tuple[str, str, str]]:
     history = [f"TAP service: {prov['service']}", f"job: {prov.get('job_url')}",
                "ADQL: " + " ".join((prov.get("adql") or "").split())]
     return cards + [("HISTORY", h, "") for h in history]
-
-
-def as_json(prov: dict) -> str:
-    return json.dumps(prov, sort_keys=True, indent=1)
