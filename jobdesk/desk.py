@@ -960,6 +960,10 @@ class Job:
         r = self.record
         return r["phase"] == phases.COMPLETED and bool(r.get("parquet_sha256"))
 
+    def history(self) -> list[dict]:
+        """The phases this record went through, oldest first (``phase``, ``at``, ``note``)."""
+        return self.desk.index.history(self.id)
+
     # --- waiting ------------------------------------------------------------------------------
 
     def wait(self, timeout: float | None = None, *, progress: bool = True) -> "Job":

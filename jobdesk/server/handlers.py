@@ -166,14 +166,15 @@ class DeskHandler(APIHandler):
         self.finish(json.dumps(payload, default=str, allow_nan=False))
 
     async def call(self, fn: Callable[..., Any], *args, **kwargs) -> Any:
-        """Run a Desk call; map unknown ids and jobdesk errors to HTTP answers."""
+        """Run a Desk call; map unknown ids and jobdesk errors to HTTP answers.
+
+        Only ``JobNotFound`` is a 404: any other ``KeyError`` is a bug, answered 500 and logged
+        with its traceback by the server like every other unexpected exception."""
         try:
             return await self.runner.run(fn, *args, **kwargs)
         except JobNotFound as exc:
             raise _Answer(404, {"message": exc.message, "hint": exc.hint,
                                 "error": "JobNotFound"}) from None
-        except KeyError as exc:
-            raise _Answer(404, {"message": f"no such job: {exc.args[0] if exc.args else ''}"})
         except JobdeskError as exc:
             status = (409 if isinstance(exc, ResultUnavailable)
                       else 502 if isinstance(exc, ServiceError) else 409)
@@ -266,8 +267,8 @@ def _groups(desk, by: str, filters: dict) -> dict:
 
 
 def _details(desk, job_id: str) -> dict:
-    job = desk.job(job_id)
-    history = desk.index.history(job_id)
+    job = desk.job(job_id)  # JobNotFound (404) when unknown
+    history = job.history()
     try:
         provenance, why = job.provenance(), None
     except JobdeskError as exc:  # no result yet, or it failed: the record still shows
