@@ -225,6 +225,15 @@ class AnalysisNotFound(AnalysisError, KeyError):
         return JobdeskError.__str__(self)
 
 
+class PlanNotFound(AnalysisError, KeyError):
+    """No re-run plan with this id on this desk (a KeyError too, for older code)."""
+
+    hint = "a plan id comes from desk.rerun(...).id; list an analysis's plans in its steps"
+
+    def __str__(self) -> str:  # KeyError would quote the message
+        return JobdeskError.__str__(self)
+
+
 class RenameInvalid(AnalysisError):
     """A re-run's renames do not fit: a source name no step uses, a target the new release
     lacks, or a name the rewritten queries read that the new release does not have."""
