@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import datetime as _dt
 import getpass
-import json
 import platform
 from importlib import metadata
 
