@@ -9,7 +9,7 @@
 from jobdesk.desk import Desk, Job
 from jobdesk.groups import Group
 from jobdesk.errors import (
-    AnalysisError, AnalysisNotFound, CompareKeyInvalid, RenameInvalid,
+    AnalysisError, AnalysisNotFound, CompareKeyInvalid, PlanNotFound, RenameInvalid,
     BadServiceURL, CacheCorrupt, ConfigError, ExportRefused, ExportTargetExists, ExportWarning,
     GroupCacheWarning, IndexBusy, JobAborted, JobdeskError, JobFailed, JobLost, JobNotFound,
     JobIdAmbiguous, JobUnreached, NotATapService, NotRepeatableWarning, PublishRefused, QueryEmpty,
@@ -23,7 +23,7 @@ from jobdesk.errors import (
 __version__ = "0.1.0"
 
 __all__ = [
-    "AnalysisError", "AnalysisNotFound", "CompareKeyInvalid", "RenameInvalid",
+    "AnalysisError", "AnalysisNotFound", "CompareKeyInvalid", "PlanNotFound", "RenameInvalid",
     "BadServiceURL", "CacheCorrupt", "ConfigError", "Desk", "ExportRefused", "ExportTargetExists",
     "ExportWarning", "Group", "GroupCacheWarning", "IndexBusy", "Job", "JobAborted", "JobdeskError",
     "JobFailed", "JobIdAmbiguous", "JobLost", "JobNotFound", "JobUnreached", "NotATapService",

@@ -29,7 +29,7 @@ from jobdesk.errors import (
     NotRepeatableWarning,
     QueryCheckWarning, QueryEmpty, QueryRejected, SyncTimeout, UnknownTable, ResultTruncated,
     ResultTruncatedWarning, ResultUnavailable, ServiceRefused, ServiceResponseInvalid,
-    ServiceUnreachable, WaitTimeout,
+    ServiceUnreachable, WaitTimeout, PlanNotFound,
 )
 from jobdesk.groups import GroupCaches
 from jobdesk.index import Index, this_process
@@ -208,13 +208,27 @@ class Desk:
     def jobs(self, *, phase=None, service=None, text=None, limit: int | None = 50,
              offset: int = 0) -> list["Job"]:
         """Job records, newest first, filtered by phase(s), service URL and free text."""
-        service = keys.service_id(service) if service else None
-        return [Job(self, r["id"], r) for r in self.index.list(
+        return [Job(self, r["id"], r) for r in self.records(
             phase=phase, service=service, text=text, limit=limit, offset=offset)]
 
-    def count(self, *, phase=None, service=None, text=None) -> int:
+    def records(self, *, phase=None, service=None, text=None, limit: int | None = 50,
+                offset: int = 0, sort: str = "created", notebook: str | None = None,
+                analysis: str | None = None) -> list[dict]:
+        """A page of job records as plain dicts, read in one index query (a ``Job`` reads its
+        record again on every property, which a list of many jobs cannot afford).
+
+        ``sort`` is one of ``index.SORTS``; ``notebook=""`` / ``analysis=""`` pick the jobs
+        with none."""
         service = keys.service_id(service) if service else None
-        return self.index.count(phase=phase, service=service, text=text)
+        return self.index.list(phase=phase, service=service, text=text, limit=limit,
+                               offset=offset, sort=sort, notebook=notebook, analysis=analysis)
+
+    def count(self, *, phase=None, service=None, text=None, notebook: str | None = None,
+              analysis: str | None = None) -> int:
+        """How many records the same filters as :meth:`records` select (one count query)."""
+        service = keys.service_id(service) if service else None
+        return self.index.count(phase=phase, service=service, text=text, notebook=notebook,
+                                analysis=analysis)
 
     def job(self, job_id: str) -> "Job":
         record = self.index.get(job_id)
@@ -547,10 +561,10 @@ class Desk:
         return analyses.make_plan(self, name, dict(rename or {}), url, into)
 
     def plan(self, plan_id: str) -> "analyses.Plan":
-        """A re-run plan by its id (``KeyError`` when unknown)."""
+        """A re-run plan by its id (``PlanNotFound``, a ``KeyError``, when unknown)."""
         record = self.index.plan(plan_id)
         if record is None:
-            raise KeyError(f"no re-run plan {plan_id!r} in {self.root}")
+            raise PlanNotFound(f"no re-run plan {plan_id!r} in {self.root}")
         return analyses.Plan(self, record)
 
     def compare(self, old, new, *, key: str | None = None, tolerance: float = 0.0):
@@ -1011,6 +1025,10 @@ class Job:
     def ready(self) -> bool:
         r = self.record
         return r["phase"] == phases.COMPLETED and bool(r.get("parquet_sha256"))
+
+    def history(self) -> list[dict]:
+        """The phases this record went through, oldest first (``phase``, ``at``, ``note``)."""
+        return self.desk.index.history(self.id)
 
     # --- waiting ------------------------------------------------------------------------------
 

@@ -11,8 +11,11 @@ from __future__ import annotations
 
 import errno
 import sqlite3
+from xml.etree.ElementTree import ParseError
 
 import requests
+from defusedxml import DefusedXmlException
+from defusedxml import ElementTree as SafeET
 
 
 class JobdeskError(Exception):
@@ -234,6 +237,15 @@ class AnalysisNotFound(AnalysisError, KeyError):
         return JobdeskError.__str__(self)
 
 
+class PlanNotFound(AnalysisError, KeyError):
+    """No re-run plan with this id on this desk (a KeyError too, for older code)."""
+
+    hint = "a plan id comes from desk.rerun(...).id; list an analysis's plans in its steps"
+
+    def __str__(self) -> str:  # KeyError would quote the message
+        return JobdeskError.__str__(self)
+
+
 class RenameInvalid(AnalysisError):
     """A re-run's renames do not fit: a source name no step uses, a target the new release
     lacks, or a name the rewritten queries read that the new release does not have."""
@@ -369,9 +381,58 @@ def connection_cause(exc: BaseException) -> str:
     return "no connection"
 
 
-def _short(value: object, limit: int = 300) -> str:
-    text = " ".join(str(value).split())
+def shorten(text: str, limit: int = 300, *, one_line: bool = False) -> str:
+    """``text`` cut to ``limit`` characters (ending "..." when cut): the one shortener for
+    messages and details, so every error is cut the same way. ``one_line`` first folds runs of
+    whitespace (line breaks included) into single spaces."""
+    if one_line:
+        text = " ".join(text.split())
     return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+def _short(value: object) -> str:
+    return shorten(str(value), one_line=True)
+
+
+# --- the service's own words in an error document ----------------------------------------------
+
+_NO_MESSAGE = "the service reported an error without a message"
+
+
+def error_document_message(body: bytes) -> str | None:
+    """The message of a DALI error VOTable (QUERY_STATUS=ERROR), else None.
+
+    The one reader of error documents, for HTTP error answers, synchronous answers and small
+    downloaded results alike. DALI 1.1 §4.4.1: the QUERY_STATUS INFOs of the RESOURCE of type
+    "results" count and the last one wins; without a typed resource any INFO outside a "meta"
+    resource counts (the same rule as ``results.scan``). The message is the service's words
+    exactly, inner whitespace included; only the ends are trimmed.
+    """
+    try:
+        root = SafeET.fromstring(body)
+    except (ParseError, DefusedXmlException, ValueError):
+        return None
+    if _local(root.tag) != "VOTABLE":
+        return None
+    parents = {child: parent for parent in root.iter() for child in parent}
+    statuses: list[tuple[str, str, str]] = []  # (where, value, text), in document order
+    for element in root.iter():
+        if _local(element.tag) != "INFO" or element.get("name") != "QUERY_STATUS":
+            continue
+        parent = parents.get(element)
+        above = _local(parent.tag) if parent is not None else ""
+        where = (parent.get("type") or "") if above == "RESOURCE" else above
+        statuses.append((where, (element.get("value") or "").strip().upper(), element.text or ""))
+    in_results = [s for s in statuses if s[0] == "results"]
+    elsewhere = [s for s in statuses if s[0] != "meta"]
+    chosen = (in_results or elsewhere or [("", "OK", "")])[-1]
+    if chosen[1] != "ERROR":
+        return None
+    return chosen[2].strip() or _NO_MESSAGE
+
+
+def _local(tag: object) -> str:
+    return tag.rpartition("}")[2] if isinstance(tag, str) else ""
 
 
 # --- warnings ----------------------------------------------------------------------------------

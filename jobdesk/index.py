@@ -682,13 +682,6 @@ class Index:
                 [analysis, analysis]).fetchall()]
         return [self.plan(i) for i in ids]
 
-    def referenced_objects(self) -> set[str]:
-        """Every checksum some record points at (eviction must keep these files)."""
-        with self._lock:
-            rows = self.db.execute(
-                "SELECT result_sha256, parquet_sha256 FROM jobs").fetchall()
-        return {sha for row in rows for sha in row if sha}
-
     def integrity(self) -> str:
         with self._lock:
             return self.db.execute("PRAGMA integrity_check").fetchone()[0]

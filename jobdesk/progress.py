@@ -38,7 +38,8 @@ import threading
 import time
 from collections.abc import Callable
 
-TERMINAL_PHASES = frozenset({"COMPLETED", "ERROR", "ABORTED", "ARCHIVED", "LOST", "UNREACHED"})
+from jobdesk import phases
+
 
 
 def format_elapsed(seconds: float) -> str:
@@ -149,7 +150,7 @@ class Progress:
             parts.append(f"{self.rows:,} rows")
         if self.note:
             parts.append(self.note)
-        if self.downloaded is not None and self.phase not in TERMINAL_PHASES:
+        if self.downloaded is not None and self.phase not in phases.TERMINAL:
             parts.append(self.transfer_words())
         return " · ".join(parts)
 
@@ -178,7 +179,7 @@ class LogProgress(Progress):
         print(f"jobdesk: {self.label[:60]}: {self._closing()}", file=self.stream, flush=True)
 
     def _closing(self) -> str:
-        if self.phase in TERMINAL_PHASES:
+        if self.phase in phases.TERMINAL:
             return self.summary()
         return f"stopped watching at {self.phase}; the job goes on (its record is kept)"
 
@@ -287,7 +288,7 @@ class CardProgress(Progress):
                 part.layout.display = "none"
             self.clock.value = format_elapsed(self.elapsed)
             self.count.value = "" if self.rows is None else f"{self.rows:,} rows"
-            if self.phase not in TERMINAL_PHASES:
+            if self.phase not in phases.TERMINAL:
                 self.message.value = (f"Stopped watching at {self.phase}; the job goes on and "
                                       "its record is kept.")
 

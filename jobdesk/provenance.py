@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import datetime as _dt
 import getpass
-import json
 import platform
 from importlib import metadata
 
@@ -236,7 +235,3 @@ def fits_cards(prov: dict) -> list[tuple[str, str, str]]:
     history = [f"TAP service: {prov['service']}", f"job: {prov.get('job_url')}",
                "ADQL: " + " ".join((prov.get("adql") or "").split())]
     return cards + [("HISTORY", h, "") for h in history]
-
-
-def as_json(prov: dict) -> str:
-    return json.dumps(prov, sort_keys=True, indent=1)

@@ -49,11 +49,12 @@ from jobdesk.errors import (
     SyncTimeout,
     UploadInvalid,
     from_transport,
+    shorten,
 )
+from jobdesk.errors import error_document_message as _error_votable_message
 
 log = logging.getLogger(__name__)
 
-UWS_NS = "http://www.ivoa.net/xml/UWS/v1.0"  # UWS 1.0 and 1.1 share this namespace
 XLINK_HREF = "{http://www.w3.org/1999/xlink}href"
 CHUNK = 1 << 20  # 1 MiB: download buffer, so memory does not grow with the result
 FIRST_POLL = 0.2  # seconds before the first poll when WAIT is not available
@@ -62,8 +63,6 @@ FIND_LIMIT = 50  # job-list entries considered, and job documents read, by find(
 CAPABILITIES_LIMIT = 4 << 20  # bytes of a VOSI capabilities document read at most
 # UWS 1.1 §2.2.1.2: WAIT blocks only while the job is in one of these phases.
 WAITABLE = frozenset({phases.PENDING, phases.QUEUED, phases.EXECUTING})
-# Terminal for a client (UWS 1.1 §2.1.3).
-TERMINAL = frozenset({phases.COMPLETED, phases.ERROR, phases.ABORTED, phases.ARCHIVED})
 _UPLOAD_NAME = re.compile(r"[A-Za-z][A-Za-z0-9_]*\Z")  # ADQL 2.1 regular identifier
 _BENIGN_HEADERS = frozenset({"user-agent", "accept", "accept-encoding", "connection",
                              "accept-language", "cache-control", "content-type"})
@@ -254,7 +253,7 @@ class Remote:
         backoff = FIRST_POLL
         failures = 0
         while True:
-            if last is not None and last.phase in TERMINAL:
+            if last is not None and last.phase in phases.TERMINAL:
                 return last
             if last is not None and deadline is not None and time.monotonic() >= deadline:
                 return last
@@ -423,7 +422,7 @@ class Remote:
                 message = from_transport(exc, service=self.service).message  # no request dump
             else:
                 message = f"{exc.__class__.__name__}: {exc}"
-            info["error"] = self._scrub(_shorten(message))
+            info["error"] = self._scrub(shorten(message))
         self._capabilities = info
         return dict(info)
 
@@ -706,7 +705,7 @@ def _job_status(url: str, body: bytes, service: str, *, base: str | None = None)
         raise ServiceResponseInvalid(f"the job document has no phase: {_snippet(body)}",
                                      service=service)
     if phase.upper() not in phases.UWS_PHASES:  # UWS 1.1 §2.1.3: a closed list
-        raise ServiceResponseInvalid(f"the job document has the phase {_shorten(phase, 40)!r}, "
+        raise ServiceResponseInvalid(f"the job document has the phase {shorten(phase, 40)!r}, "
                                      f"which UWS does not define: {_snippet(body)}",
                                      service=service)
     parameters: dict[str, str] = {}
@@ -778,22 +777,6 @@ def _href(element: Element) -> str | None:
     if href is None:
         href = next((v for k, v in element.attrib.items() if _local(k) == "href"), None)
     return href
-
-
-def _error_votable_message(body: bytes) -> str | None:
-    """The message of an error VOTable (DALI 1.1 §4.4: INFO QUERY_STATUS=ERROR), else None."""
-    try:
-        root = SafeET.fromstring(body)
-    except (ParseError, DefusedXmlException, ValueError):
-        return None
-    if _local(root.tag) != "VOTABLE":
-        return None
-    status = [e for e in root.iter() if _local(e.tag) == "INFO" and e.get("name") == "QUERY_STATUS"]
-    errors = [e for e in status if (e.get("value") or "").upper() == "ERROR"]
-    if not errors:
-        return None
-    # The service's words exactly (inner whitespace included): only the ends are trimmed.
-    return (errors[-1].text or "").strip() or "the service reported an error"
 
 
 TAP_STANDARD = "ivo://ivoa.net/std/tap"  # TAPRegExt 1.0 §2; ivo identifiers ignore case
@@ -906,7 +889,7 @@ def _page_text(body: bytes) -> str:
     """The readable text of a web page, short (for ``detail``)."""
     text = body[:65536].decode("utf-8", errors="replace")
     text = re.sub(r"(?is)<(script|style)\b.*?</\1>", " ", text)
-    return _shorten(" ".join(re.sub(r"<[^>]{0,500}>", " ", text).split()))
+    return shorten(" ".join(re.sub(r"<[^>]{0,500}>", " ", text).split()))
 
 
 _STATUS_WORDS = {400: "bad request", 401: "login required", 403: "forbidden", 404: "not found",
@@ -942,10 +925,10 @@ def _response_message(response: requests.Response) -> str:
         return "(no readable body)"
     verbatim = _error_votable_message(body)
     if verbatim is not None:
-        return _shorten(verbatim, MESSAGE_LIMIT)  # an error document's message stays as written
+        return shorten(verbatim, MESSAGE_LIMIT)  # an error document's message stays as written
     message = _document_message(body)
     message = " ".join(re.sub(r"<[^>]{0,200}>", " ", message).split())  # strip stray HTML tags
-    return _shorten(message or response.reason or "(empty answer)")
+    return shorten(message or response.reason or "(empty answer)")
 
 
 class _Hasher:
@@ -1070,9 +1053,6 @@ def _public_url(url: str) -> str:
 
 
 def _snippet(body: bytes | str, limit: int = 200) -> str:
+    """A body quoted on one line, short, for a message about a malformed answer."""
     text = body.decode("utf-8", errors="replace") if isinstance(body, bytes) else body
-    return repr(_shorten(" ".join(text.split()), limit))
-
-
-def _shorten(text: str, limit: int = 300) -> str:
-    return text if len(text) <= limit else text[: limit - 3] + "..."
+    return repr(shorten(text, limit, one_line=True))

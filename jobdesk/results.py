@@ -29,7 +29,8 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 from defusedxml.ElementTree import DefusedXMLParser
 
-from jobdesk.errors import ServiceResponseInvalid
+from jobdesk.errors import ServiceResponseInvalid, shorten
+from jobdesk.errors import error_document_message as error_message
 
 __all__ = ["ResultSummary", "to_parquet", "scan", "load_table", "load_frame", "error_message",
            "read_metadata"]
@@ -491,10 +492,6 @@ def _is_utf8(arr: pa.Array) -> bool:
 # --- the streaming reader ----------------------------------------------------------------------
 
 
-def _short(text: str, limit: int = 200) -> str:
-    return text if len(text) <= limit else text[: limit - 3] + "..."
-
-
 def _local(tag: str) -> str:
     return tag.rpartition("}")[2]
 
@@ -678,7 +675,7 @@ class _Reader:
                 except (pa.ArrowInvalid, OverflowError) as exc:
                     raise ServiceResponseInvalid(
                         f"column {f.name!r} ({f.datatype}) holds a value that does not fit: "
-                        f"{_short(str(exc))}") from None
+                        f"{shorten(str(exc), 200)}") from None
             self.sink.write(cols, rows)
         self.cells = []
 
@@ -1098,19 +1095,6 @@ def read_metadata(parquet: Path) -> dict[str, str]:
 def read_summary(parquet: Path) -> ResultSummary:
     """The scan summary stored in a Parquet copy."""
     return ResultSummary.from_json(_file_meta(parquet)[SUMMARY_KEY.encode()].decode())
-
-
-def error_message(body: bytes) -> str | None:
-    """The message of a DALI error VOTable (QUERY_STATUS=ERROR), or None for anything else."""
-    import io
-
-    try:
-        summary = _read(io.BytesIO(body), _Counter())[0]
-    except ServiceResponseInvalid:
-        return None
-    if summary.status != "ERROR":
-        return None
-    return summary.message or "the service reported an error without a message"
 
 
 def _field_meta(f: pa.Field) -> dict[str, str]:

@@ -401,6 +401,44 @@ def test_non_votable_answers_say_what_was_found(tmp_path, body, found):
         results.scan(_write(tmp_path / "x.xml", body))
 
 
+_META_THEN_RESULTS = (
+    '<?xml version="1.0" encoding="UTF-8"?>\n'
+    '<VOTABLE version="1.4" xmlns="http://www.ivoa.net/xml/VOTable/v1.3">\n'
+    '<RESOURCE type="results"><INFO name="QUERY_STATUS" value="ERROR">  table  "orrery.nope"\n'
+    ' is not known </INFO></RESOURCE>\n'
+    '<RESOURCE type="meta"><INFO name="QUERY_STATUS" value="OK"/></RESOURCE>\n</VOTABLE>\n')
+
+
+@pytest.mark.parametrize("body", [
+    _doc('<INFO name="QUERY_STATUS" value="ERROR">column "magg" does not exist</INFO>'),
+    _doc('<INFO name="QUERY_STATUS" value="OK"/>' + _ONE_ROW_TABLE
+         + '<INFO name="QUERY_STATUS" value="OVERFLOW"/>'),
+    _doc(_ONE_ROW_TABLE).replace("</VOTABLE>", '<RESOURCE type="meta"><INFO name="QUERY_STATUS" '
+                                 'value="ERROR">not about the result</INFO></RESOURCE></VOTABLE>'),
+    _doc('<INFO name="QUERY_STATUS" value="ERROR">first</INFO>'
+         '<INFO name="QUERY_STATUS" value="ERROR">second and last</INFO>'),
+    _META_THEN_RESULTS,
+], ids=["error", "overflow", "meta-error", "last-wins", "results-before-meta"])
+def test_error_documents_are_read_by_one_rule_everywhere(tmp_path, body):
+    # DALI 1.1 §4.4.1: the QUERY_STATUS INFOs of the RESOURCE of type "results" count, the last
+    # one wins; a "meta" resource's does not. The HTTP side (remote) and the streaming scan
+    # must agree on every document; remote uses the very same reader.
+    from jobdesk import remote
+
+    assert remote._error_votable_message is results.error_message
+    summary = results.scan(_write(tmp_path / "d.xml", body))
+    message = results.error_message(body.encode())
+    assert (message is not None) == (summary.status == "ERROR")
+    if message is not None:
+        assert message == summary.message.strip()
+        # the reference reader (astropy) sees the same words in the results RESOURCE's INFO
+        table = parse(str(tmp_path / "d.xml"))
+        infos = [i for r in table.resources if r.type == "results" for i in r.infos
+                 if i.name == "QUERY_STATUS"]
+        assert infos[-1].value == "ERROR"
+        assert message == (infos[-1].content or "").strip()
+
+
 def test_entity_expansion_bomb_is_refused(tmp_path):
     lol = "".join(f'<!ENTITY l{i} "{"&l%d;" % (i - 1) * 10}">' for i in range(1, 10))
     body = (f'<?xml version="1.0"?><!DOCTYPE VOTABLE [<!ENTITY l0 "lol">{lol}]>'

@@ -166,15 +166,21 @@ class DeskHandler(APIHandler):
         self.finish(json.dumps(payload, default=str, allow_nan=False))
 
     async def call(self, fn: Callable[..., Any], *args, **kwargs) -> Any:
-        """Run a Desk call; map unknown ids and jobdesk errors to HTTP answers."""
+        """Run a Desk call; map unknown ids and jobdesk errors to HTTP answers.
+
+        Only our typed not-found errors (``JobNotFound``, ``AnalysisNotFound``,
+        ``PlanNotFound``: a ``JobdeskError`` that is also a ``KeyError``) are 404s; a bare
+        ``KeyError`` is a bug, answered 500 and logged with its traceback by the server like
+        every other unexpected exception."""
         try:
             return await self.runner.run(fn, *args, **kwargs)
         except JobNotFound as exc:
             raise _Answer(404, {"message": exc.message, "hint": exc.hint,
                                 "error": "JobNotFound"}) from None
-        except KeyError as exc:
-            raise _Answer(404, {"message": f"no such job: {exc.args[0] if exc.args else ''}"})
         except JobdeskError as exc:
+            if isinstance(exc, KeyError):
+                raise _Answer(404, {"message": exc.message, "hint": exc.hint,
+                                    "error": type(exc).__name__}) from None
             status = (409 if isinstance(exc, ResultUnavailable)
                       else 502 if isinstance(exc, ServiceError) else 409)
             raise _Answer(status, {"message": exc.message, "hint": exc.hint,
@@ -249,12 +255,12 @@ def _int_arg(handler: DeskHandler, name: str, default: int, low: int, high: int)
 
 
 def _list_page(desk, filters: dict, limit: int, offset: int, sort: str = "created") -> dict:
-    where = _where(desk, filters)
-    if "analysis" in where and "analysis" not in desk.index.columns():
+    """One page: its records in one query, the total in one count (and the change token)."""
+    if "analysis" in filters and "analysis" not in desk.index.columns():
         return {"jobs": [], "total": 0, "limit": limit, "offset": offset, "sort": sort,
                 "token": change_token(desk)}
-    jobs = desk.index.list(**where, limit=limit, offset=offset, sort=sort)
-    return {"jobs": jobs, "total": desk.index.count(**where), "limit": limit, "offset": offset,
+    jobs = desk.records(**filters, limit=limit, offset=offset, sort=sort)
+    return {"jobs": jobs, "total": desk.count(**filters), "limit": limit, "offset": offset,
             "sort": sort, "token": change_token(desk)}
 
 
@@ -266,8 +272,8 @@ def _groups(desk, by: str, filters: dict) -> dict:
 
 
 def _details(desk, job_id: str) -> dict:
-    job = desk.job(job_id)
-    history = desk.index.history(job_id)
+    job = desk.job(job_id)  # JobNotFound (404) when unknown
+    history = job.history()
     try:
         provenance, why = job.provenance(), None
     except JobdeskError as exc:  # no result yet, or it failed: the record still shows
