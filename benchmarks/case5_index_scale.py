@@ -25,13 +25,15 @@ import requests
 from benchmarks._seed import seed
 from benchmarks.common import CaseResult, Context, Row, median, repeat
 from jobdesk import Desk, keys
+from jobdesk.index import SCHEMA_VERSION
 
 SEED_VERSION = 1
 
 
 def seeded_root(ctx: Context, jobs: int) -> tuple[Path, dict]:
     """A copy of the seeded root for this run (the seeded original is kept in the cache)."""
-    cached = ctx.cache / f"index-{jobs}-v{SEED_VERSION}"
+    # Keyed by the index schema too: a seeded index is made for one schema, never migrated here.
+    cached = ctx.cache / f"index-{jobs}-v{SEED_VERSION}-s{SCHEMA_VERSION}"
     facts_file = cached / "seed.json"
     if not facts_file.exists():
         shutil.rmtree(cached, ignore_errors=True)
