@@ -137,6 +137,36 @@ export class DeskRequestError extends Error {
   }
 }
 
+/**
+ * One request to the REST API under `<base>/jobdesk/api/`: JSON in, JSON out, an error answer
+ * as DeskRequestError with the server's message (and the closest names it suggests) and hint.
+ * Every sidebar model calls the server through this function.
+ */
+export async function deskRequest<T>(
+  settings: ServerConnection.ISettings,
+  path: string,
+  init: RequestInit = {}
+): Promise<T> {
+  const url = URLExt.join(settings.baseUrl, 'jobdesk', 'api', path);
+  const response = await ServerConnection.makeRequest(url, init, settings);
+  const text = await response.text();
+  let body: any = null;
+  try {
+    body = text ? JSON.parse(text) : null;
+  } catch {
+    body = { message: text };
+  }
+  if (!response.ok) {
+    const more = body?.suggestions?.length ? ` (did you mean ${body.suggestions.join(', ')}?)` : '';
+    throw new DeskRequestError(
+      (body?.message || response.statusText || `HTTP ${response.status}`) + more,
+      response.status,
+      body?.hint || ''
+    );
+  }
+  return body as T;
+}
+
 export const PAGE_SIZE = 100;
 
 export class JobDeskModel {
@@ -383,27 +413,7 @@ export class JobDeskModel {
 
   /** Call the REST API under `<base>/jobdesk/api/`; JSON in, JSON out, errors as exceptions. */
   async request<T>(path: string, init: RequestInit = {}): Promise<T> {
-    const url = URLExt.join(this.settings.baseUrl, 'jobdesk', 'api', path);
-    const response = await ServerConnection.makeRequest(
-      url,
-      { signal: this._abort.signal, ...init },
-      this.settings
-    );
-    const text = await response.text();
-    let body: any = null;
-    try {
-      body = text ? JSON.parse(text) : null;
-    } catch {
-      body = { message: text };
-    }
-    if (!response.ok) {
-      throw new DeskRequestError(
-        body?.message || response.statusText || `HTTP ${response.status}`,
-        response.status,
-        body?.hint || ''
-      );
-    }
-    return body as T;
+    return deskRequest<T>(this.settings, path, { signal: this._abort.signal, ...init });
   }
 
   private replace(record: IJobRecord): void {

@@ -7,6 +7,8 @@ import { URLExt } from '@jupyterlab/coreutils';
 import { ServerConnection } from '@jupyterlab/services';
 import { ISignal, Signal } from '@lumino/signaling';
 
+import { deskRequest } from './model';
+
 export interface IServiceInfo {
   service: string;
   jobs: number;
@@ -161,20 +163,7 @@ export class ServicesModel {
     }
   }
 
-  async request<T>(path: string): Promise<T> {
-    const url = URLExt.join(this.settings.baseUrl, 'jobdesk', 'api', path);
-    const response = await ServerConnection.makeRequest(url, {}, this.settings);
-    const text = await response.text();
-    let body: any = null;
-    try {
-      body = text ? JSON.parse(text) : null;
-    } catch {
-      body = { message: text };
-    }
-    if (!response.ok) {
-      const more = body?.suggestions?.length ? ` (did you mean ${body.suggestions.join(', ')}?)` : '';
-      throw new Error((body?.message || response.statusText || `HTTP ${response.status}`) + more);
-    }
-    return body as T;
+  request<T>(path: string): Promise<T> {
+    return deskRequest<T>(this.settings, path);
   }
 }
