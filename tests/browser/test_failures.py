@@ -132,6 +132,9 @@ def test_unreachable_and_failed_jobs_say_so_and_offer_next_steps(lab, page, tmp_
             arg=len(before), timeout=30_000)
         new = [j for j in desk.jobs(limit=None) if j.id not in before]
         assert len(new) == 1 and new[0].record["adql"] == REFUSED
+        # "Send again" opens the new job's details: let that happen before going back to the
+        # old job, or it would come to the front over the old one's details mid-step.
+        page.locator(f"#jobdesk-job-{new[0].id}").wait_for(timeout=30_000)
 
         # forget: after the confirmation the record is gone (its details come back to the front)
         row(page, failed.id).focus()
