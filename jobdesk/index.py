@@ -302,8 +302,7 @@ class Index:
             args += [int(limit), int(offset)]
         with self._lock:
             cur = self.db.execute(sql, args)
-            cols = [d[0] for d in cur.description]
-            return [_decode(dict(zip(cols, r))) for r in cur.fetchall()]
+            return [_decode(r) for r in _dicts(cur)]
 
     def unfinished(self, *, service: str | None = None) -> list[dict]:
         """Records that still need work: active ones, and finished ones not yet fetched.
@@ -320,8 +319,7 @@ class Index:
                f"WHERE phase = 'COMPLETED' AND parquet_sha256 IS NULL {where}")
         with self._lock:
             cur = self.db.execute(sql, [*active, *args, *args])
-            cols = [d[0] for d in cur.description]
-            rows = [_decode(dict(zip(cols, r))) for r in cur.fetchall()]
+            rows = [_decode(r) for r in _dicts(cur)]
         return sorted(rows, key=lambda r: r["created"])
 
     def count(self, *, phase: str | list[str] | None = None, service: str | None = None,
@@ -549,8 +547,7 @@ class Index:
             args.append(service)
         with self._lock:
             cur = self.db.execute(sql + " ORDER BY service", args)
-            cols = [d[0] for d in cur.description]
-            rows = [dict(zip(cols, r)) for r in cur.fetchall()]
+            rows = _dicts(cur)
         for row in rows:
             row["skipped"] = json.loads(row["skipped"] or "[]")
         return rows
@@ -569,8 +566,7 @@ class Index:
             args += [int(limit), int(offset)]
         with self._lock:
             cur = self.db.execute(sql, args)
-            cols = [d[0] for d in cur.description]
-            return [dict(zip(cols, r)) for r in cur.fetchall()]
+            return _dicts(cur)
 
     def meta_table_like(self, service: str, name: str) -> list[dict]:
         """Tables whose full or short name is ``name``, ignoring case (two indexed reads)."""
@@ -581,16 +577,14 @@ class Index:
                 "WHERE service = ? AND lname = ? UNION SELECT name, schema_name, description, "
                 "nrows, ncols FROM meta_tables WHERE service = ? AND lshort = ?",
                 [service, low, service, low])
-            cols = [d[0] for d in cur.description]
-            return [dict(zip(cols, r)) for r in cur.fetchall()]
+            return _dicts(cur)
 
     def meta_columns(self, service: str, table: str) -> list[dict]:
         with self._lock:
             cur = self.db.execute(
                 "SELECT name, datatype, arraysize, xtype, unit, ucd, description FROM "
                 "meta_columns WHERE service = ? AND table_name = ? ORDER BY ord", [service, table])
-            cols = [d[0] for d in cur.description]
-            return [dict(zip(cols, r)) for r in cur.fetchall()]
+            return _dicts(cur)
 
     def meta_find(self, service: str, match: str, *, limit: int = 50) -> list[dict]:
         """Tables and columns whose names, descriptions, units or UCDs match an FTS5 query;
@@ -736,6 +730,12 @@ def _filters(phase, service, text, notebook=None, analysis=None) -> tuple[str, l
         pattern = "%" + text.replace("\\", "\\\\").replace("%", "\\%").replace("_", "\\_") + "%"
         args += [pattern, pattern, text]
     return ("WHERE " + " AND ".join(clauses)) if clauses else "", args
+
+
+def _dicts(cur) -> list[dict]:
+    """The rows a cursor holds, each as {column name: value}."""
+    cols = [d[0] for d in cur.description]
+    return [dict(zip(cols, r)) for r in cur.fetchall()]
 
 
 _JSON_FIELDS = ("uploads", "warnings", "server", "estimate", "fetch")
