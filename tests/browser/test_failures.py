@@ -6,13 +6,12 @@ our hint and the next steps, which work: send again (a new job of the same query
 notebook (the query's code lands in a cell), forget.
 
 The lab loads this checkout's sidebar bundle (jobdesk/labextension, built with
-``cd labextension && npm run build``) through JUPYTER_PATH, ahead of any installed copy.
+``cd labextension && npm run build``) ahead of any installed copy (see tests/server/jupyter_launch.py).
 """
 
 from __future__ import annotations
 
 import json
-import os
 import socket
 from pathlib import Path
 
@@ -38,9 +37,6 @@ def lab(tmp_path_factory):
     if not (BUNDLE / "package.json").exists():
         pytest.skip("the sidebar bundle is not built here (cd labextension && npm run build)")
     work = tmp_path_factory.mktemp("lab")
-    shared = work / "share"
-    (shared / "labextensions").mkdir(parents=True)
-    (shared / "labextensions" / "jobdesk-labextension").symlink_to(BUNDLE)
     notebook = {"cells": [{"cell_type": "code", "execution_count": None, "metadata": {},
                            "outputs": [], "source": "# fix the query here"}],
                 "metadata": {"kernelspec": {"name": "python3", "display_name": "Python 3",
@@ -48,16 +44,9 @@ def lab(tmp_path_factory):
                 "nbformat": 4, "nbformat_minor": 5}
     (work / "notebooks").mkdir(parents=True)
     (work / "notebooks" / NOTEBOOK).write_text(json.dumps(notebook))
-    old = os.environ.get("JUPYTER_PATH")
-    os.environ["JUPYTER_PATH"] = str(shared) + (os.pathsep + old if old else "")
-    try:
-        with start_lab(work, work / "desk") as jp:
-            yield jp
-    finally:
-        if old is None:
-            os.environ.pop("JUPYTER_PATH", None)
-        else:
-            os.environ["JUPYTER_PATH"] = old
+    # RunningJupyter links this checkout's bundle ahead of any installed copy.
+    with start_lab(work, work / "desk") as jp:
+        yield jp
 
 
 @pytest.fixture(scope="module")

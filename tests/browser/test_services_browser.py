@@ -2,14 +2,13 @@
 real service: pick the service, open a table, read its columns, search, insert a query.
 
 The lab loads THIS checkout's bundle (jobdesk/labextension, built with ``npm run build`` in
-labextension/): a JUPYTER_PATH entry put first holds a link to it, so an installed copy of
-the extension elsewhere on the machine is not what is tested.  Skipped when it is not built.
+labextension/): tests/server/jupyter_launch.py links it into the lab's JUPYTER_DATA_DIR, so an
+installed copy of the extension elsewhere on the machine is not what is tested.  Skipped when it is not built.
 """
 
 from __future__ import annotations
 
 import json
-import os
 from pathlib import Path
 
 import pytest
@@ -39,9 +38,6 @@ def lab(tmp_path_factory, tap):
     if not (BUNDLE / "package.json").exists():
         pytest.skip("the lab extension is not built here (cd labextension && npm run build)")
     work = tmp_path_factory.mktemp("lab")
-    data = work / "data" / "labextensions"
-    data.mkdir(parents=True)
-    (data / "jobdesk-labextension").symlink_to(BUNDLE)
     notebook = {"cells": [{"cell_type": "code", "execution_count": None, "metadata": {},
                            "outputs": [], "source": "import jobdesk"}],
                 "metadata": {"kernelspec": {"name": "python3", "display_name": "Python 3",
@@ -50,16 +46,9 @@ def lab(tmp_path_factory, tap):
     (work / "notebooks").mkdir(parents=True)
     (work / "notebooks" / NOTEBOOK).write_text(json.dumps(notebook))
     Desk(work / "desk").tables(tap.url)                  # the desk knows this service
-    old = os.environ.get("JUPYTER_PATH")
-    os.environ["JUPYTER_PATH"] = str(work / "data") + (os.pathsep + old if old else "")
-    try:
-        with start_lab(work, work / "desk") as jp:
-            yield jp
-    finally:
-        if old is None:
-            os.environ.pop("JUPYTER_PATH", None)
-        else:
-            os.environ["JUPYTER_PATH"] = old
+    # RunningJupyter links this checkout's bundle ahead of any installed copy.
+    with start_lab(work, work / "desk") as jp:
+        yield jp
 
 
 def test_browse_a_service_and_insert_a_starter_query(lab, browser, tap):
