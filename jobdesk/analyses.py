@@ -114,9 +114,9 @@ class Plan:
         record = self.desk.index.get(s["new_job"])
         if record is None:
             return FAILED
-        if record["phase"] == phases.COMPLETED and record.get("parquet_sha256"):
+        if record.has_result:
             return DONE
-        if record["phase"] in (phases.ERROR, phases.ABORTED, phases.LOST, phases.ARCHIVED):
+        if record.phase in phases.FAILED:
             return FAILED
         return RUNNING
 
@@ -134,7 +134,8 @@ class Plan:
         out = []
         for s in self.steps:
             if s["state"] == FAILED:
-                why = s.get("error") or (self.desk.index.get(s["new_job"]) or {}).get("error")
+                record = self.desk.index.get(s["new_job"]) if s.get("new_job") else None
+                why = s.get("error") or (record.error if record is not None else None)
                 out.append({"step": s["step"], "error": why or "the job failed"})
             elif s["state"] == BLOCKED:
                 out.append({"step": s["step"], "error": "depends on a step that failed: "
@@ -276,28 +277,28 @@ def make_plan(desk, name: str, renames: dict[str, str], service: str | None,
         if record is None:
             problems.append(f"step {s['step']}: job {s['job_id']} was forgotten from this desk")
             continue
-        target = sid or record["service"]
+        target = sid or record.service
         try:
-            done = rewrite.rewrite(record["adql"], renames) if renames else None
+            done = rewrite.rewrite(record.adql, renames) if renames else None
         except rewrite.QueryUnreadable as exc:
             problems.append(f"step {s['step']}: {exc}; it cannot be rewritten safely")
             continue
         if done is not None:
             used |= done.used
-        new_adql = done.adql if done is not None else record["adql"]
+        new_adql = done.adql if done is not None else record.adql
         depends = {}
         for upload, job_id in (s["depends"] or {}).items():
             if job_id in by_job:
                 depends[upload] = by_job[job_id]
-        uploads = {n: sha for n, sha in (record.get("uploads") or {}).items() if n not in depends}
+        uploads = {n: sha for n, sha in record.uploads.items() if n not in depends}
         if target not in metadata:
             metadata[target] = tableset.published(desk, target)
         meta = metadata[target]
         if meta is not None:
             problems += _check_names(s["step"], new_adql, meta, done, renames, target)
-        planned.append({"step": s["step"], "old_job": s["job_id"], "old_adql": record["adql"],
-                        "new_adql": new_adql, "service": target, "maxrec": record.get("maxrec"),
-                        "fmt": record.get("fmt") or "votable", "label": record.get("label"),
+        planned.append({"step": s["step"], "old_job": s["job_id"], "old_adql": record.adql,
+                        "new_adql": new_adql, "service": target, "maxrec": record.maxrec,
+                        "fmt": record.fmt or "votable", "label": record.label,
                         "uploads": uploads, "depends": depends, "new_job": None, "error": None})
     for source in renames:
         if source not in used:

@@ -129,7 +129,7 @@ def cmd_show(args) -> int:
             print(f"{name:>13}: {value}")
     if unreachable_note(r):
         print(f"{'unreachable':>13}: {unreachable_note(r)}")
-    if r["phase"] in (phases.ERROR, phases.ABORTED, phases.LOST, phases.UNREACHED):
+    if r["phase"] in phases.FAILED:
         print(f"{'next':>13}: `jobdesk resend {r['id']}` (same query, new job) or "
               f"`jobdesk forget {r['id']}`")
     print(f"{'created':>13}: {_when(r['created'])}")

@@ -20,32 +20,24 @@ import platformdirs
 
 from jobdesk import checks as query_checks
 from jobdesk import estimate as cost
-from jobdesk import (analyses, formats, keys, metadata, phases, provenance, results, transfer,
-                     voparquet)
+from jobdesk import analyses, formats, keys, metadata, phases, provenance, results, transfer
 from jobdesk import uploads as upload_tables
 from jobdesk.errors import (
-    BadServiceURL, CacheCorrupt, ConfigError, GroupCacheWarning, JobAborted, JobdeskError, JobFailed,
-    JobIdAmbiguous, JobLost, JobNotFound, JobUnreached, MetadataUnavailable, MetadataWarning,
-    NotRepeatableWarning,
+    CacheCorrupt, ConfigError, JobAborted, JobdeskError, JobFailed, JobIdAmbiguous, JobLost,
+    JobNotFound, JobUnreached, MetadataUnavailable, MetadataWarning, NotRepeatableWarning,
     QueryCheckWarning, QueryEmpty, QueryRejected, SyncTimeout, UnknownTable, ResultTruncated,
-    ResultTruncatedWarning, ResultUnavailable, ServiceRefused, ServiceResponseInvalid,
-    ServiceUnreachable, WaitTimeout, PlanNotFound,
+    ResultUnavailable, ServiceUnreachable, WaitTimeout, PlanNotFound,
 )
 from jobdesk.groups import GroupCaches
 from jobdesk.index import Index, this_process
+from jobdesk.lifecycle import (  # noqa: F401  (limits and phase sets: public names of desk)
+    DEFAULT_RUNNING_LIMIT, FAILED, REFUSED, SEND_TRIES, USER_ABORT, Lifecycle, seconds_text,
+    transient)
+from jobdesk.record import JobRecord
 from jobdesk.remote import Remote
-from jobdesk.store import Store, stat_stamp
-from jobdesk.transfer import FetchMeter
+from jobdesk.store import Store
 
-DEFAULT_RUNNING_LIMIT = 4     # jobs per service at once; common practice, no source
-HELD_RETRY = 5.0              # seconds between PHASE=RUN to a HELD job; common practice, no source
-LEASE_SECONDS = 60.0          # a driver renews its lease at least this often
 UNREACHABLE_SLICES = 3        # with a timeout: consecutive failed slices before wait() gives up
-SEND_TRIES = 3                # tries to create a job before its record ends UNREACHED
-RETRY_PAUSE = 5.0             # seconds before the 2nd try of an unreachable service, doubling
-RETRY_PAUSE_MAX = 60.0        # ... up to this (common practice, no source)
-FAILED = frozenset({phases.ERROR, phases.ABORTED, phases.LOST, phases.ARCHIVED,
-                    phases.UNREACHED})
 
 
 def default_root() -> Path:
@@ -92,10 +84,11 @@ class Desk:
         # Waiting goes in slices of one WAIT window (plus a second, so the window's own read
         # fits), renewing the lease between them; the last status read carries over.
         self.drive_slice = wait_window + 1.0
-        self._last_status: dict[str, object] = {}
-        self._held_run: dict[str, float] = {}   # job URL -> when RUN was last sent to it HELD
         self._sessions: dict[str, object] = {}
         self.groups = GroupCaches(groups, root=self.root)  # lookup order: personal, then these
+        self.lifecycle = Lifecycle(self.index, self.store, self.groups, remote=self._remote,
+                                   owner=self.owner, limits=self.limits,
+                                   send_tries=self.send_tries)
 
     def __repr__(self) -> str:
         return f"Desk({str(self.root)!r})"
@@ -136,8 +129,8 @@ class Desk:
             for upload, key in sources.items():
                 made = self.index.find(key, reuse=lambda r: True)
                 # a table cut down from a result is an upload of its own, not that result
-                if made is not None and rows_given.get(upload) in (None, made.get("rows")):
-                    depends[upload] = made["id"]
+                if made is not None and rows_given.get(upload) in (None, made.rows):
+                    depends[upload] = made.id
             self.index.add_step(name, job.id, depends)
         return job
 
@@ -154,20 +147,20 @@ class Desk:
                              uploads=digests, scope=scope)
         oldest = None if max_age is None else time.time() - _seconds(max_age)
 
-        def reuse(record: dict) -> bool:
-            if refresh or record["phase"] in FAILED:
+        def reuse(record: JobRecord) -> bool:
+            if refresh or record.phase in FAILED:
                 return False
-            if record["phase"] == phases.COMPLETED and record.get("parquet_sha256"):
-                fresh = oldest is None or (record.get("finished") or 0) >= oldest
-                here = (self.store.has(record["parquet_sha256"])
-                        or record.get("layer") in self.groups.names)  # copied on first use
+            if record.has_result:
+                fresh = oldest is None or (record.finished or 0) >= oldest
+                here = (self.store.has(record.parquet_sha256)
+                        or record.layer in self.groups.names)  # copied on first use
                 return fresh and here
             return True  # still running somewhere: share it
 
         known = None if refresh else self.index.find(key, reuse=reuse)
-        if known is not None and self._copied_here(known):  # the fast path: no parse, no lock
-            _warn_not_repeatable(known.get("warnings") or ())
-            return Job(self, known["id"], known)
+        if known is not None and self.lifecycle.bring_here(known):  # fast path: no parse, no lock
+            _warn_not_repeatable(known.warnings)
+            return Job(self, known.id, known)
         if check:      # a hit above sends nothing, so only a query about to be sent is checked
             self._refuse_bad(sid, adql)
         measured = None
@@ -193,14 +186,14 @@ class Desk:
             "estimate": measured.to_dict() if measured is not None else None,
         }
         record, created = self.index.claim(key, fields, reuse=reuse)
-        if not created and not self._copied_here(record):
+        if not created and not self.lifecycle.bring_here(record):
             record, created = self.index.claim(key, fields, reuse=reuse)
-        job = Job(self, record["id"])
+        job = Job(self, record.id)
         if created:
             if not publish and self.groups:
-                self.groups.opt_out(record["id"])
-            if refresh or not self._from_groups(record, oldest):
-                self._try_start(record)
+                self.groups.opt_out(record.id)
+            if refresh or not self.lifecycle.from_groups(record, oldest):
+                self.lifecycle.start(record)
         return job
 
     # --- browsing -----------------------------------------------------------------------------
@@ -208,7 +201,8 @@ class Desk:
     def jobs(self, *, phase=None, service=None, text=None, limit: int | None = 50,
              offset: int = 0) -> list["Job"]:
         """Job records, newest first, filtered by phase(s), service URL and free text."""
-        return [Job(self, r["id"], r) for r in self.records(
+        service = keys.service_id(service) if service else None
+        return [Job(self, r.id, r) for r in self.index.list(
             phase=phase, service=service, text=text, limit=limit, offset=offset)]
 
     def records(self, *, phase=None, service=None, text=None, limit: int | None = 50,
@@ -220,8 +214,9 @@ class Desk:
         ``sort`` is one of ``index.SORTS``; ``notebook=""`` / ``analysis=""`` pick the jobs
         with none."""
         service = keys.service_id(service) if service else None
-        return self.index.list(phase=phase, service=service, text=text, limit=limit,
-                               offset=offset, sort=sort, notebook=notebook, analysis=analysis)
+        return [r.as_dict() for r in self.index.list(
+            phase=phase, service=service, text=text, limit=limit, offset=offset, sort=sort,
+            notebook=notebook, analysis=analysis)]
 
     def count(self, *, phase=None, service=None, text=None, notebook: str | None = None,
               analysis: str | None = None) -> int:
@@ -250,17 +245,17 @@ class Desk:
 
     def abort(self, job_id: str) -> "Job":
         """Abort a job on its service (or locally, if it was never created there)."""
-        record = self.job(job_id).record
-        if record["phase"] in phases.TERMINAL:
+        record = self.job(job_id).typed()
+        if record.phase in phases.TERMINAL:
             return Job(self, job_id, record)
-        if record.get("job_url"):
-            remote = self._remote(record["service"])
+        if record.job_url:
+            remote = self._remote(record.service)
             # Said first, so a process driving the job reads the abort as the user's own.
             self.index.update(job_id, error=USER_ABORT)
             try:
-                remote.abort(record["job_url"])
+                remote.abort(record.job_url)
             except BaseException:
-                self.index.update(job_id, error=record.get("error"))
+                self.index.update(job_id, error=record.error)
                 raise
             finally:
                 self.index.update(job_id, requests_add=remote.requests)
@@ -283,25 +278,25 @@ class Desk:
         """Send a record's query again as a new job (same query, service, MAXREC, uploads and
         label): the next step after ERROR, ABORTED, LOST or UNREACHED. A run of the same query
         already going on is shared instead."""
-        old = self.job(job_id).record
-        if old["phase"] not in FAILED:
+        old = self.job(job_id).typed()
+        if old.phase not in FAILED:
             return Job(self, job_id, old)
         new_id = uuid.uuid4().hex[:16]
-        fields = {name: old.get(name) for name in (
+        fields = {name: getattr(old, name) for name in (
             "service", "adql", "canonical", "maxrec", "fmt", "label", "scope", "uploads",
             "warnings", "notebook", "user", "host")}
         fields.update(id=new_id, phase=phases.UNSENT, run_id=f"jobdesk-{new_id}",
                       layer="personal", requests=0)
         record, created = self.index.claim(
-            old["key"], fields, reuse=lambda r: r["phase"] in phases.ACTIVE)
+            old.key, fields, reuse=lambda r: r.phase in phases.ACTIVE)
         if created:
             self.index.update(job_id, note=f"sent again as {new_id}")
             try:
-                self._try_start(record)
+                self.lifecycle.start(record)
             except JobdeskError as exc:
-                if not _transient(exc):
+                if not transient(exc):
                     raise
-        return Job(self, record["id"])
+        return Job(self, record.id)
 
     def cache_summary(self) -> dict:
         """What the caches hold. ``entries`` counts files; ``results`` counts results (a
@@ -316,10 +311,10 @@ class Desk:
     def publish(self, job_id: str, *, group: str | None = None) -> str:
         """Share a finished, complete result with ``group`` (default: the first read-write
         group cache) now; return where its manifest went. Raises ``PublishRefused``."""
-        record = self.job(job_id).record
-        if not self._copied_here(record):
+        record = self.job(job_id).typed()
+        if not self.lifecycle.bring_here(record):
             raise CacheCorrupt(f"job {job_id}: its result is not in this cache")
-        name, rel = self.groups.publish(record, self.store, group=group)
+        name, rel = self.groups.publish(record.as_dict(), self.store, group=group)
         return f"{name}:{rel}"
 
     def pin(self, job_id: str, *, pinned: bool = True) -> None:
@@ -443,10 +438,10 @@ class Desk:
             raise QueryRejected("the query cannot be estimated: it does not parse\n"
                                 + "\n".join(map(str, bad)), findings=bad, service=sid)
         remote = self._remote(sid)
-        caps = self._capabilities(sid)
+        caps = self.lifecycle.capabilities(sid)
         output = caps.get("output_limit") or {}
         if fmt is None:
-            fmt = formats.choose(self._capabilities(sid, output_formats=True))
+            fmt = formats.choose(self.lifecycle.capabilities(sid, output_formats=True))
         try:
             return cost.measure(adql, remote.sync, fmt=fmt, maxrec=maxrec,
                                 default_maxrec=output.get("default"),
@@ -573,114 +568,18 @@ class Desk:
         from jobdesk.compare import compare_files
         old = old if isinstance(old, Job) else self.job(old)
         new = new if isinstance(new, Job) else self.job(new)
-        result = compare_files(old._result_path(False), new._result_path(False), key=key,
+        result = compare_files(old.result_path(), new.result_path(), key=key,
                                tolerance=tolerance)
         result.old = {"job": old.id, "provenance": old.provenance()}
         result.new = {"job": new.id, "provenance": new.provenance()}
         return result
 
-    # --- group caches (see jobdesk.groups) ------------------------------------------------------
-
-    def _from_groups(self, record: dict, oldest: float | None) -> bool:
-        """After a personal miss: take the result from the first group cache that has it, or
-        join a colleague's running job announced there. True when no new job is needed."""
-        if not self.groups or not self.index.take_lease(record["id"], self.owner, LEASE_SECONDS):
-            return False
-        try:
-            served = self.groups.serve(record["key"], self.store, oldest=oldest)
-            if served is not None:
-                self._record_served(record["id"], served)
-                return True
-            running = self.groups.running_elsewhere(record["key"])
-            if running is not None and running[1]["service"] == record["service"]:
-                layer, claim = running
-                self.index.update(record["id"], job_url=claim["job_url"],
-                                  phase=phases.SUBMITTED, submitted=time.time(),
-                                  note=f"joined the job {claim['claimant']} runs, announced in "
-                                       f"group cache {layer.name}")
-                return True
-            return False
-        finally:
-            self.index.release(record["id"], self.owner)
-
-    def _record_served(self, job_id: str, served) -> None:
-        m = served.manifest
-        (raw_sha, raw_path), (table_sha, table_path) = (served.copies["votable"],
-                                                        served.copies["parquet"])
-        self.groups.remember(job_id, served)
-        self.index.update(job_id, phase=phases.COMPLETED, layer=served.layer.name,
-                          job_url=m.get("job_url"), rows=m["rows"], truncated=0,
-                          result_sha256=raw_sha, result_bytes=m["objects"]["votable"]["bytes"],
-                          result_stat=stat_stamp(raw_path), parquet_sha256=table_sha,
-                          parquet_stat=stat_stamp(table_path), server=m.get("server") or {},
-                          submitted=m.get("submitted"),
-                          finished=m.get("finished") or m["published_unix"], note=served.account)
-
-    def _copied_here(self, record: dict) -> bool:
-        """Whether a finished record's files are in the personal store; a record listed from a
-        group cache (``jobdesk group add-to-index``) gets them now, verified, or is marked LOST."""
-        if (record["phase"] != phases.COMPLETED or not record.get("parquet_sha256")
-                or record.get("layer") in (None, "personal")
-                or self.store.has(record["parquet_sha256"])):
-            return True
-        if record["layer"] not in self.groups.names:
-            return False  # that group is not configured on this desk: nothing to judge it by
-        served = self.groups.layer(record["layer"]).serve(record["key"], self.store)
-        if served is not None:
-            self._record_served(record["id"], served)
-            return True
-        self.index.update(record["id"], phase=phases.LOST, parquet_sha256=None,
-                          error=f"group cache {record['layer']} no longer has a good copy",
-                          note="group copy unusable")
-        return False
-
-    def _publish_quietly(self, job_id: str) -> None:
-        """Publish a fresh complete result unless opted out; a failure only warns."""
-        if not any(not layer.readonly for layer in self.groups.layers) \
-                or self.groups.opted_out(job_id):
-            return
-        record = self.index.get(job_id)
-        if record.get("scope") == "authenticated":
-            return  # results seen with credentials stay personal unless scope= names a group
-        try:
-            self.groups.publish(record, self.store)
-        except (JobdeskError, OSError) as exc:
-            warnings.warn(GroupCacheWarning(f"job {job_id}: the result stays personal, "
-                                            f"publishing failed: {exc}"), stacklevel=4)
-
-    def _announce(self, job_id: str) -> None:
-        """Keep this job's claim in the group cache fresh while it runs; drop it after."""
-        if self.groups:
-            record = self.index.get(job_id)
-            if record is not None:
-                self.groups.heartbeat(record, running=record["phase"] in phases.ACTIVE)
-
     def step(self, *, owner: str | None = None, service: str | None = None) -> int:
-        """Advance every job no live process is driving, once, without blocking; return count.
+        """Advance every job no live process is driving, once, without blocking; return how
+        many moved (the Jupyter server's poller calls this; see ``Lifecycle.step``)."""
+        return self.lifecycle.step(owner=owner, service=service)
 
-        The Jupyter server's poller calls this so that jobs whose kernel died still finish;
-        a job waiting for a free slot calls it for its service, so the slot frees even when
-        the job holding it has no waiter of its own.
-        """
-        owner = owner or self.owner
-        advanced = 0
-        for record in self.index.unfinished(service=service):
-            if (record.get("next_try") or 0) > time.time():
-                continue  # the service was unreachable; its next try is not due yet
-            try:
-                if record["phase"] == phases.UNSENT:
-                    advanced += self._try_start(record, owner=owner)["phase"] != phases.UNSENT
-                elif self.index.take_lease(record["id"], owner, LEASE_SECONDS):
-                    try:
-                        self._drive(record, deadline=None, once=True)
-                        advanced += 1
-                    finally:
-                        self.index.release(record["id"], owner)
-            except JobdeskError:
-                continue  # recorded on the job; the next pass tries again where it makes sense
-        return advanced
-
-    # --- the work -----------------------------------------------------------------------------
+    # --- services -----------------------------------------------------------------------------
 
     def _unwrap(self, service) -> tuple[str, object]:
         """A URL string, or a pyvo TAPService (its base URL and session are used)."""
@@ -700,297 +599,24 @@ class Desk:
     def _remote(self, service: str) -> Remote:
         return Remote(service, self._sessions.get(service, self.session), **self._remote_options)
 
-    def _try_start(self, record: dict, *, owner: str | None = None) -> dict:
-        """Create an UNSENT job on its service if the per-service limit lets it start now."""
-        owner = owner or self.owner
-        job_id = record["id"]
-        limit = self.limits.get(record["service"], DEFAULT_RUNNING_LIMIT)
-        if not self.index.claim_start(job_id, limit=limit, owner=owner, seconds=LEASE_SECONDS):
-            return self.index.get(job_id) or record
-        remote = self._remote(record["service"])
-        try:
-            job_url = self._find_orphan(record, remote) if record.get("intent") else None
-            if job_url is None:
-                self.index.update(job_id, intent=time.time())
-                sent = {name: self.store.path(sha).read_bytes()
-                        for name, sha in (record.get("uploads") or {}).items()}
-                fmt = record.get("fmt") or record.get("result_fmt") or \
-                    formats.choose(self._capabilities(record["service"], output_formats=True))
-
-                def create(fmt: str) -> str:
-                    self.index.update(job_id, result_fmt=fmt)
-                    return remote.create(record["adql"], maxrec=record.get("maxrec"), fmt=fmt,
-                                         uploads=sent or None, run_id=record["run_id"])
-                try:
-                    job_url = create(fmt)
-                except JobdeskError as exc:
-                    if _transient(exc) or not formats.blames_format(str(exc), fmt) or \
-                            not self._may_fall_back(record, fmt, str(exc)):
-                        raise
-                    job_url = create(formats.DEFAULT)
-                self.index.update(job_id, job_url=job_url, phase=phases.SUBMITTED,
-                                  submitted=time.time(), error=None, note="created on the service",
-                                  **_REACHED)
-                remote.run(job_url)
-                self._announce(job_id)
-            else:
-                self.index.update(job_id, job_url=job_url, phase=phases.SUBMITTED,
-                                  submitted=time.time(), error=None,
-                                  note="re-attached after a crash", **_REACHED)
-                if remote.status(job_url).phase == phases.PENDING:
-                    remote.run(job_url)
-        except JobdeskError as exc:
-            fresh = self.index.get(job_id) or record
-            if _transient(exc) and fresh.get("job_url"):
-                self._unreachable(fresh, exc)  # created, only RUN went unanswered
-            elif _transient(exc):
-                # The service may hold the job (only its answer was lost) or be down a while:
-                # the record stays UNSENT, so the next wait, submit or poller pass finds the
-                # job by its RUNID (or starts it) instead of making a second one; after
-                # ``send_tries`` tries it ends UNREACHED, saying why.
-                tries = (fresh.get("send_tries") or 0) + 1
-                if tries >= self.send_tries:
-                    since = fresh.get("unreachable_since") or time.time()
-                    self.index.update(
-                        job_id, phase=phases.UNREACHED, finished=time.time(), send_tries=tries,
-                        error=f"the service could not be reached in {tries} tries over "
-                              f"{_seconds_text(time.time() - since)}: {exc.message}",
-                        last_error=exc.message, error_detail=exc.detail, next_try=None,
-                        note="never reached the service; no job exists there")
-                else:
-                    self._unreachable(fresh, exc, send_tries=tries)
-            else:
-                self.index.update(job_id, phase=phases.ERROR, error=str(exc),
-                                  error_detail=exc.detail, finished=time.time(),
-                                  note="could not create the job")
-            raise
-        finally:
-            self.index.update(job_id, requests_add=remote.requests)
-            self.index.release(job_id, owner)
-        return self.index.get(job_id)
-
-    def _unreachable(self, record: dict, exc: JobdeskError, **fields) -> dict:
-        """Record that the service did not answer: since when, why, and when the next try is."""
-        now = time.time()
-        since = record.get("unreachable_since") or now
-        tries = fields.get("send_tries") or record.get("send_tries") or 1
-        pause = min(RETRY_PAUSE * 2 ** max(0, tries - 1), RETRY_PAUSE_MAX)
-        return self.index.update(record["id"], unreachable_since=since, last_error=exc.message,
-                                 error_detail=exc.detail, next_try=now + pause,
-                                 error=str(exc), note=None, **fields)
-
-    def _find_orphan(self, record: dict, remote: Remote) -> str | None:
-        """The server job a killed process created but never recorded, if the service has it."""
-        after = provenance.iso(record["intent"] - 120)
-        found = remote.find(run_id=record["run_id"], after=after, adql=record["adql"])
-        return found[0] if found else None
-
-    def _drive(self, record: dict, *, deadline: float | None, once: bool = False,
-               on_status=None, on_transfer=None) -> dict:
-        """Wait on the service (up to ``deadline``) and fetch the result once it is COMPLETED;
-        ``on_transfer(done_bytes, total_bytes_or_None)`` follows the download."""
-        job_id = record["id"]
-        remote = self._remote(record["service"])
-
-        ran = False
-
-        def trouble(exc) -> None:
-            if isinstance(exc, ServiceUnreachable):
-                record.update(self._unreachable(self.index.get(job_id) or record, exc))
-                if on_status:
-                    on_status(None)
-
-        def seen(status) -> None:
-            nonlocal ran
-            if record.get("unreachable_since"):
-                self.index.update(job_id, **_REACHED)
-                record.update(_REACHED)
-            if status.phase == phases.PENDING and not ran:
-                ran = True  # created, but its RUN was lost or never sent (a crash in between)
-                remote.run(record["job_url"])
-            fields = {"phase": status.phase}
-            began = _unix(status.start_time)
-            if began is not None and record.get("started") != began:
-                fields["started"] = record["started"] = began    # the service's own startTime
-            elif status.phase == phases.EXECUTING and not record.get("started"):
-                fields["started"] = record["started"] = time.time()
-            for name, value in (("service_started", status.start_time),
-                                ("service_finished", status.end_time)):
-                when = _unix(value)
-                if when is not None and record.get(name) != when:
-                    fields[name] = record[name] = when
-            if status.phase != record["phase"] or len(fields) > 1:
-                self.index.update(job_id, **fields)
-                record["phase"] = status.phase
-            last_run = self._held_run.get(record["job_url"], 0.0)
-            if status.phase == phases.HELD and time.monotonic() - last_run >= HELD_RETRY \
-                    and self._slot_free(record):
-                # UWS 1.1 §2.1.3: HELD waits for the client to send PHASE=RUN again. A HELD job
-                # (recorded as such just above) holds no per-service slot, so it is re-run only
-                # when one is free.
-                self._held_run[record["job_url"]] = time.monotonic()
-                remote.run(record["job_url"])
-            if on_status:
-                on_status(status)
-
-        try:
-            if once or record["phase"] == phases.COMPLETED:
-                status = remote.status(record["job_url"])
-                seen(status)
-            else:
-                status = remote.wait(record["job_url"], deadline=deadline, on_status=seen,
-                                     known=self._last_status.get(record["job_url"]),
-                                     on_trouble=trouble)
-            self._last_status[record["job_url"]] = status
-            if status.phase == phases.COMPLETED:
-                self._fetch(record, status, remote, on_transfer=on_transfer)
-            elif status.phase == phases.ERROR:
-                message = status.error_summary or ""
-                try:
-                    detail = remote.error_detail(record["job_url"])
-                except JobdeskError:
-                    detail = ""
-                message = detail or message or "the service reported ERROR without a message"
-                fmt = record.get("result_fmt")
-                if not (formats.blames_format(message, fmt)
-                        and self._may_fall_back(record, fmt, message, again=True)):
-                    self.index.update(job_id, phase=phases.ERROR, error=message,
-                                      finished=time.time())
-            elif status.phase in (phases.ABORTED, phases.ARCHIVED) and not (
-                    status.phase == phases.ABORTED
-                    and (self.index.get(job_id) or {}).get("error") == USER_ABORT):
-                # (an abort from this desk has already said so, in its own words)
-                self.index.update(job_id, phase=status.phase, finished=time.time(),
-                                  error=status.error_summary or f"the job is {status.phase}")
-        except JobLost as exc:
-            self.index.update(job_id, phase=phases.LOST, finished=time.time(), error=str(exc),
-                              note="the service no longer knows the job")
-        except ServiceUnreachable as exc:
-            self._unreachable(self.index.get(job_id) or record, exc)
-            raise
-        finally:
-            self.index.update(job_id, requests_add=remote.requests)
-            self._announce(job_id)
-        return self.index.get(job_id)
-
-    def _slot_free(self, record: dict) -> bool:
-        """Whether the per-service limit lets one more of this desk's jobs run now."""
-        limit = self.limits.get(record["service"], DEFAULT_RUNNING_LIMIT)
-        return self.index.count(phase=sorted(phases.RUNNING), service=record["service"]) < limit
-
-    def _may_fall_back(self, record: dict, fmt: str | None, why: str, *,
-                       again: bool = False) -> bool:
-        """Once per job, when the service failed on a format jobdesk chose (not the user): note
-        it and go on with the default; ``again`` sends the job back to be created anew."""
-        if record.get("fmt") or not fmt or fmt == formats.DEFAULT:
-            return False
-        note = (f"the service failed with RESPONSEFORMAT={fmt} ({why[:200]}); "
-                f"retrying once with {formats.DEFAULT}")
-        if again:
-            # a RUNID of its own, so that orphan recovery never finds the failed job instead
-            self.index.update(record["id"], phase=phases.UNSENT, job_url=None, intent=None,
-                              run_id=f"{record['run_id']}-default", result_fmt=formats.DEFAULT,
-                              error=None, note=note)
-        else:
-            self.index.update(record["id"], result_fmt=formats.DEFAULT, note=note)
-        record["result_fmt"] = formats.DEFAULT
-        return True
-
-    def _capabilities(self, service: str, *, output_formats: bool = False) -> dict:
-        """The service's VOSI capabilities, read once per service and kept in the index.
-
-        Read through its own Remote so the request is not charged to the job; a failure is
-        recorded in the answer and read again next time, never failing the job.
-        """
-        known = self.index.service_info(service)
-        if known is not None and (not output_formats or "output_formats" in known):
-            return known
-        info = self._remote(service).capabilities()
-        if "error" not in info:
-            self.index.set_service_info(service, info)
-        return info
-
-    def _fetch(self, record: dict, status, remote: Remote, *, on_transfer=None) -> None:
-        """Stream the result to disk, make the Parquet copy, register both atomically."""
-        job_id = record["id"]
-        url = status.result_url or record["job_url"].rstrip("/") + "/results/result"
-        raw = self.store.temp(".vot")
-        table = self.store.temp(".parquet")
-        meter = FetchMeter(lambda fetch: self.index.update(job_id, fetch=fetch))
-        try:
-            def progress(done: int) -> None:
-                meter.bytes(done)
-                if on_transfer is not None:
-                    on_transfer(done, meter.state["total"])
-            got = remote.download(url, raw, on_size=meter.length, on_progress=progress)
-            meta = {"jobdesk_key": record["key"], "service": record["service"],
-                    "adql": record["adql"], "job_url": record["job_url"]}
-            fmt = record.get("result_fmt") or record.get("fmt") or formats.DEFAULT
-            if formats.is_csv(fmt):
-                summary = results.csv_to_parquet(raw, table, metadata=meta)
-            else:
-                summary = _cache_copy(raw, table, meta, got.content_type, on_rows=meter.rows)
-            if summary.status == "ERROR":
-                self.index.update(job_id, phase=phases.ERROR, finished=time.time(),
-                                  error=summary.message or "the result document says ERROR")
-                return
-            raw_sha, raw_path = self.store.commit(raw, got.sha256)
-            table_sha, table_path = self.store.commit(table)
-        except (ServiceResponseInvalid, BadServiceURL, JobFailed) as exc:
-            # Not a result (an error document, broken or hostile bytes, an unusable link):
-            # fetching again would meet the same answer, so the job ends here, saying why
-            # (unless jobdesk chose the format: then once more with the default).
-            if not self._may_fall_back(record, record.get("result_fmt"), exc.message, again=True):
-                self.index.update(job_id, phase=phases.ERROR, finished=time.time(),
-                                  error=f"job {job_id}: {_REFUSED}: {exc.message}",
-                                  note="the result was refused")
-            return
-        finally:
-            raw.unlink(missing_ok=True)
-            table.unlink(missing_ok=True)
-            if meter.state["bytes"]:
-                meter.done()
-        truncated = summary.status == "OVERFLOW"
-        server = {k: v for k, v in summary.infos.items()
-                  if k in ("server_software", "publisher", "request_date", "citation")}
-        server["capabilities"] = self._capabilities(record["service"])
-        # The service's own job times (UWS 1.1 §2.2.1), for the provenance's start and end.
-        server.update({k: v for k, v in (("start_time", status.start_time),
-                                         ("end_time", status.end_time)) if v})
-        self.index.update(job_id, phase=phases.COMPLETED, finished=time.time(),
-                          rows=summary.rows, truncated=int(truncated), result_sha256=raw_sha,
-                          result_bytes=got.bytes, result_stat=stat_stamp(raw_path),
-                          parquet_sha256=table_sha, parquet_stat=stat_stamp(table_path),
-                          server=server, error=None, note="result saved",
-                          result_fmt=record.get("result_fmt") or record.get("fmt")
-                          or got.content_type)
-        if not truncated:
-            self._publish_quietly(job_id)
-        if truncated:
-            warnings.warn(ResultTruncatedWarning(
-                f"job {job_id}: the result was truncated at {summary.rows} rows "
-                f"(MAXREC={record.get('maxrec')}, or a service limit); it is incomplete"),
-                stacklevel=3)
-
-
 class Job:
     """A handle on one index record; every property reads the record afresh."""
 
-    def __init__(self, desk: Desk, job_id: str, record: dict | None = None):
+    def __init__(self, desk: Desk, job_id: str, record: JobRecord | None = None):
         self.desk = desk
         self.id = job_id
         self._record = record
 
     def __repr__(self) -> str:
-        r = self.record
-        rows = "" if r.get("rows") is None else f", rows={r['rows']}"
-        cut = ", TRUNCATED" if r.get("truncated") else ""
-        return f"<jobdesk.Job {self.id} {r['phase']}{rows}{cut} {self.title!r}>"
+        r = self.typed()
+        rows = "" if r.rows is None else f", rows={r.rows}"
+        cut = ", TRUNCATED" if r.truncated else ""
+        return f"<jobdesk.Job {self.id} {r.phase}{rows}{cut} {self.title!r}>"
 
     # --- the record ---------------------------------------------------------------------------
 
-    @property
-    def record(self) -> dict:
+    def typed(self) -> JobRecord:
+        """The record as the index holds it now (``jobdesk.record.JobRecord``)."""
         record = self.desk.index.get(self.id)
         if record is None:
             raise JobLost(f"job {self.id} was forgotten from this desk",
@@ -999,32 +625,33 @@ class Job:
         return record
 
     @property
+    def record(self) -> dict:
+        """The record as a JSON-safe dict (the REST API's job object)."""
+        return self.typed().as_dict()
+
+    @property
     def key(self) -> str:
-        return (self._record or self.record)["key"]
+        return (self._record or self.typed()).key
 
     @property
     def phase(self) -> str:
-        return self.record["phase"]
+        return self.typed().phase
 
     @property
     def rows(self) -> int | None:
-        return self.record.get("rows")
+        return self.typed().rows
 
     @property
     def truncated(self) -> bool | None:
-        value = self.record.get("truncated")
-        return None if value is None else bool(value)
+        return self.typed().truncated
 
     @property
     def title(self) -> str:
-        r = self._record or self.record
-        return r.get("label") or next((ln.strip() for ln in r["adql"].splitlines()
-                                       if ln.strip()), "")
+        return (self._record or self.typed()).title
 
     @property
     def ready(self) -> bool:
-        r = self.record
-        return r["phase"] == phases.COMPLETED and bool(r.get("parquet_sha256"))
+        return self.typed().has_result
 
     def history(self) -> list[dict]:
         """The phases this record went through, oldest first (``phase``, ``at``, ``note``)."""
@@ -1044,38 +671,44 @@ class Job:
         display = _progress(self.title, self.id) if progress else None
         t0 = time.monotonic()
         unreachable = 0
-        record = self.record
+        record = self.typed()
 
         def show(phase: str | None = None) -> None:
             if display is not None:
                 now = self.desk.index.get(self.id) or record
                 # Another process may be fetching: show its figures from the index too.
-                fetch = now.get("fetch") or {}
+                fetch = now.fetch or {}
                 if fetch.get("stage") == "download":
                     display.transfer(fetch.get("bytes") or 0, fetch.get("total"))
-                note = unreachable_note(now) or (
+                note = unreachable_note(now.as_dict()) or (
                     transfer.describe(fetch) if fetch.get("stage") == "convert" else "")
-                display.update(phase or now["phase"], time.monotonic() - t0, now.get("rows"),
-                               note=note)
+                display.update(phase or now.phase, time.monotonic() - t0, now.rows, note=note)
+
+        def shown(status) -> None:
+            show(status.phase if status is not None else None)
+
+        def fetched(done: int, total: int | None) -> None:
+            if display is not None:
+                display.transfer(done, total)
         try:
             while True:
-                record = self.record
+                record = self.typed()
                 show()
                 if display is not None and display.cancelled \
-                        and record["phase"] not in phases.TERMINAL:
+                        and record.phase not in phases.TERMINAL:
                     self.desk.abort(self.id)
                     continue
-                if record["phase"] == phases.COMPLETED and record.get("parquet_sha256"):
-                    if display is not None and record.get("truncated"):
-                        display.update(record["phase"], time.monotonic() - t0, record["rows"],
+                if record.has_result:
+                    if display is not None and record.truncated:
+                        display.update(record.phase, time.monotonic() - t0, record.rows,
                                        note="truncated: not the full answer (MAXREC or a "
                                             "service limit)")
                     return self
-                if record["phase"] == phases.ABORTED and record.get("error") == USER_ABORT:
+                if record.phase == phases.ABORTED and record.error == USER_ABORT:
                     print(f"jobdesk: job {self.id} was aborted at your request; it has no "
                           f"result (send it again with desk.resend({self.id!r}))")
                     return self
-                if record["phase"] in FAILED:
+                if record.phase in FAILED:
                     raise self._failure(record)
                 if deadline is not None and time.monotonic() >= deadline:
                     raise self._timeout(record, timeout)
@@ -1083,94 +716,80 @@ class Job:
                 if deadline is not None:
                     slice_end = min(slice_end, deadline)
                 try:
-                    if (record.get("next_try") or 0) > time.time():
-                        _sleep_until(min(slice_end, time.monotonic() + record["next_try"]
+                    if (record.next_try or 0) > time.time():
+                        _sleep_until(min(slice_end, time.monotonic() + record.next_try
                                          - time.time()), 1.0)  # ticks the note's countdown
                         continue
-                    if record["phase"] == phases.UNSENT:
-                        if self.desk._try_start(record)["phase"] == phases.UNSENT:
-                            self.desk.step(service=record["service"])
-                            _sleep_until(slice_end, 0.5)
-                    elif self.desk.index.take_lease(self.id, self.desk.owner, LEASE_SECONDS):
-                        try:
-                            def shown(status):
-                                show(status.phase if status is not None else None)
-                            def fetched(done, total):
-                                if display is not None:
-                                    display.transfer(done, total)
-                            self.desk._drive(record, deadline=slice_end, on_status=shown,
-                                             on_transfer=fetched)
-                        finally:
-                            self.desk.index.release(self.id, self.desk.owner)
-                    else:
-                        _sleep_until(slice_end, 0.5)  # another process drives it: watch
+                    if not self.desk.lifecycle.advance(record, until=slice_end, on_status=shown,
+                                                       on_transfer=fetched):
+                        _sleep_until(slice_end, 0.5)  # no slot yet, or another process drives
                     unreachable = 0
                 except ServiceUnreachable:
-                    if self.record["phase"] in FAILED:
+                    if self.typed().phase in FAILED:
                         continue  # it ended UNREACHED: the loop says so
                     unreachable += 1
                     if deadline is not None and unreachable >= UNREACHABLE_SLICES:
                         raise
         finally:
             if display is not None:
-                display.close(record["phase"])
+                display.close(record.phase)
 
-    def _timeout(self, record: dict, timeout: float) -> WaitTimeout:
-        since = record.get("unreachable_since")
-        if since:
+    def _timeout(self, record: JobRecord, timeout: float) -> WaitTimeout:
+        if record.unreachable_since:
             return WaitTimeout(
                 f"job {self.id}: the service has been unreachable for "
-                f"{_seconds_text(time.time() - since)} ({record.get('last_error')}); the record "
-                f"is still {record['phase']} and retries at the next wait",
-                service=record["service"], detail=record.get("error_detail"))
-        return WaitTimeout(f"job {self.id} is still {record['phase']} after {timeout:g} s",
-                           service=record["service"])
+                f"{seconds_text(time.time() - record.unreachable_since)} ({record.last_error}); "
+                f"the record is still {record.phase} and retries at the next wait",
+                service=record.service, detail=record.error_detail)
+        return WaitTimeout(f"job {self.id} is still {record.phase} after {timeout:g} s",
+                           service=record.service)
 
     def failure(self) -> JobdeskError | None:
         """The error this job ended with (message, hint, detail), or None if it did not fail."""
-        record = self.record
-        if record["phase"] not in FAILED:
+        record = self.typed()
+        if record.phase not in FAILED:
             return None
         return self._failure(record)
 
-    def _failure(self, record: dict) -> JobdeskError:
-        message = record.get("error") or f"job {self.id} ended in {record['phase']}"
-        service = record["service"]
-        if record["phase"] == phases.UNREACHED:
+    def _failure(self, record: JobRecord) -> JobdeskError:
+        message = record.error or f"job {self.id} ended in {record.phase}"
+        service = record.service
+        if record.phase == phases.UNREACHED:
             return JobUnreached(f"job {self.id}: {message}", service=service,
-                                detail=record.get("error_detail"))
-        if record["phase"] == phases.ABORTED:
+                                detail=record.error_detail)
+        if record.phase == phases.ABORTED:
             return JobAborted(message, phase=phases.ABORTED, service=service)
-        if record["phase"] in (phases.LOST, phases.ARCHIVED):
+        if record.phase in (phases.LOST, phases.ARCHIVED):
             return JobLost(f"job {self.id}: {message}", service=service)
-        if _looks_like_query_error(message) and _REFUSED not in message:
-            spot = query_checks.from_service(record["adql"], message)
+        if _looks_like_query_error(message) and REFUSED not in message:
+            spot = query_checks.from_service(record.adql, message)
             if spot is not None:
                 return QueryRejected(f"{message}\n{spot.caret()}", findings=[spot],
                                      service=service)
             return QueryRejected(message, service=service)
-        return JobFailed(message, phase=record["phase"], summary=record.get("error"),
-                         service=service)
+        return JobFailed(message, phase=record.phase, summary=record.error, service=service)
 
     # --- the result ---------------------------------------------------------------------------
 
-    def _result_path(self, allow_truncated: bool) -> Path:
-        r = self.record
-        if not (r["phase"] == phases.COMPLETED and r.get("parquet_sha256")):
-            if r["phase"] in FAILED:
+    def result_path(self, *, allow_truncated: bool = False) -> Path:
+        """The cached Parquet file of the result, checked against its checksum; raises what
+        keeps it from being used (not finished, failed, truncated, a bad copy)."""
+        r = self.typed()
+        if not r.has_result:
+            if r.phase in FAILED:
                 raise self._failure(r)
-            raise ResultUnavailable(f"job {self.id} has no result yet (phase {r['phase']})")
-        if r.get("truncated") and not allow_truncated:
+            raise ResultUnavailable(f"job {self.id} has no result yet (phase {r.phase})")
+        if r.truncated and not allow_truncated:
             raise ResultTruncated(
-                f"job {self.id}: the result was truncated at {r['rows']} rows "
-                f"(MAXREC={r.get('maxrec')} or a service limit); it is not the full answer",
-                rows=r.get("rows"), service=r["service"])
-        if not self.desk._copied_here(r):  # listed from a group cache, not fetched yet
-            raise CacheCorrupt(f"job {self.id}: its files are in group cache {r['layer']}, "
+                f"job {self.id}: the result was truncated at {r.rows} rows "
+                f"(MAXREC={r.maxrec} or a service limit); it is not the full answer",
+                rows=r.rows, service=r.service)
+        if not self.desk.lifecycle.bring_here(r):  # listed from a group cache, not fetched yet
+            raise CacheCorrupt(f"job {self.id}: its files are in group cache {r.layer}, "
                                "which has no good copy or is not configured on this desk")
-        r = self.record
+        r = self.typed()
         try:
-            return self.desk.store.checked(r["parquet_sha256"], r.get("parquet_stat"))
+            return self.desk.store.checked(r.parquet_sha256, r.parquet_stat)
         except CacheCorrupt:
             self.desk.index.update(self.id, phase=phases.LOST, parquet_sha256=None,
                                    error="cached file failed its checksum; resubmit",
@@ -1179,24 +798,24 @@ class Job:
 
     def table(self, *, allow_truncated: bool = False):
         """The result as an astropy Table (units, UCDs and descriptions kept)."""
-        return results.load_table(self._result_path(allow_truncated))
+        return results.load_table(self.result_path(allow_truncated=allow_truncated))
 
     def frame(self, *, allow_truncated: bool = False):
         """The result as a pandas DataFrame (units and descriptions in ``.attrs``)."""
-        return results.load_frame(self._result_path(allow_truncated))
+        return results.load_frame(self.result_path(allow_truncated=allow_truncated))
 
     def provenance(self) -> dict:
         """Where this result came from, as a JSON-safe dict (see ``jobdesk.provenance``)."""
-        r = self.record
+        r = self.typed()
         columns = []
-        if r.get("parquet_sha256") and self.desk.store.has(r["parquet_sha256"]):
-            columns = results.columns(self.desk.store.path(r["parquet_sha256"]))
+        if r.parquet_sha256 and self.desk.store.has(r.parquet_sha256):
+            columns = results.columns(self.desk.store.path(r.parquet_sha256))
         prov = provenance.build(r, self.desk.index.history(self.id), columns=columns)
-        prov["tables"] = list(keys.canonical_adql(r["adql"]).tables)
+        prov["tables"] = list(keys.canonical_adql(r.adql).tables)
         prov["lookup_order"] = ["personal", *self.desk.groups.names]
-        if r.get("layer") not in (None, "personal"):
+        if r.layer not in (None, "personal"):
             prov["group"] = self.desk.groups.served_note(self.id)
-            prov["served"] = (prov["group"] or {}).get("account") or f"group cache {r['layer']}"
+            prov["served"] = (prov["group"] or {}).get("account") or f"group cache {r.layer}"
         return prov
 
     def account(self) -> str:
@@ -1221,44 +840,25 @@ class Job:
     def snippet(self) -> str:
         """Python that loads this result in a notebook."""
         root = "" if self.desk.root == default_root() else repr(str(self.desk.root))
-        opt = "allow_truncated=True" if self.record.get("truncated") else ""
+        opt = "allow_truncated=True" if self.truncated else ""
         return (f"from jobdesk import Desk\n\n"
                 f"table = Desk({root}).job({self.id!r}).table({opt})  # {self.title[:60]}\n")
 
     def query_code(self) -> str:
         """Python that sends this record's query again, to edit in a notebook first."""
-        r = self.record
+        r = self.typed()
         root = "" if self.desk.root == default_root() else repr(str(self.desk.root))
-        options = "".join(f", {name}={r[name]!r}" for name in ("maxrec", "label")
-                          if r.get(name) is not None)
-        quoted = r["adql"].strip().replace("\\", "\\\\").replace('"""', '\\"\\"\\"')
+        options = "".join(f", {name}={getattr(r, name)!r}" for name in ("maxrec", "label")
+                          if getattr(r, name) is not None)
+        quoted = r.adql.strip().replace("\\", "\\\\").replace('"""', '\\"\\"\\"')
         return (f"from jobdesk import Desk\n\n"
-                f"job = Desk({root}).submit(\n    {r['service']!r},\n    \"\"\"\n{quoted}\n\"\"\"{options},\n"
+                f"job = Desk({root}).submit(\n    {r.service!r},\n    \"\"\"\n{quoted}\n\"\"\"{options},\n"
                 f"    refresh=True,\n)\njob.wait()\n")
 
     def preview(self, rows: int = 20) -> dict:
         """The first rows and the column descriptions, JSON-safe, without loading everything."""
-        path = self._result_path(allow_truncated=True)
-        return results.preview(path, rows=rows) | {"bytes": self.record.get("result_bytes")}
-
-
-def _unix(text: str | None) -> float | None:
-    """An ISO 8601 time from a job document as unix seconds; None when absent or unreadable."""
-    if not text:
-        return None
-    try:
-        moment = _dt.datetime.fromisoformat(text.strip().replace("Z", "+00:00"))
-    except ValueError:
-        return None
-    if moment.tzinfo is None:
-        moment = moment.replace(tzinfo=_dt.timezone.utc)   # UWS times are UTC (DALI 1.1 §3.3.3)
-    return moment.timestamp()
-
-
-USER_ABORT = "aborted from jobdesk"  # the error text of a job its user aborted
-# Fields that end the "service unreachable" state once the service answers again.
-_REACHED = {"unreachable_since": None, "last_error": None, "error_detail": None,
-            "next_try": None, "send_tries": 0}
+        path = self.result_path(allow_truncated=True)
+        return results.preview(path, rows=rows) | {"bytes": self.typed().result_bytes}
 
 
 def service_duration(record: dict) -> float | None:
@@ -1273,15 +873,10 @@ def unreachable_note(record: dict) -> str:
     if not since or record.get("phase") in phases.TERMINAL:
         return ""
     now = time.time()
-    text = f"service unreachable for {_seconds_text(now - since)}, retrying"
+    text = f"service unreachable for {seconds_text(now - since)}, retrying"
     if record.get("next_try"):
         text += f" (next try in {max(0, round(record['next_try'] - now))} s)"
     return text
-
-
-def _seconds_text(seconds: float) -> str:
-    from jobdesk.progress import format_elapsed
-    return format_elapsed(seconds)
 
 
 def _meaningful(adql: str) -> bool:
@@ -1332,33 +927,6 @@ def _progress(title: str, job_id: str | None = None):
 
 def _sleep_until(end: float, step: float) -> None:
     time.sleep(max(0.0, min(step, end - time.monotonic())))
-
-
-def _transient(exc: JobdeskError) -> bool:
-    """Whether a failure may pass by itself: no answer at all, or HTTP 429 / 5xx."""
-    status = getattr(exc, "status", None)
-    return isinstance(exc, ServiceUnreachable) or (
-        isinstance(exc, ServiceRefused) and status is not None and (status == 429 or status >= 500))
-
-
-def _cache_copy(raw: Path, table: Path, meta: dict, content_type: str | None, *,
-                on_rows=None):
-    """The cache's Parquet copy of a result, by what the bytes are (the job may have been
-    joined from another process, which chose the format); a Content-Type that says otherwise
-    is refused rather than guessed at."""
-    declared = formats.declared_serialization(content_type)
-    if voparquet.is_parquet(raw):
-        if "xml" in (content_type or "").lower():
-            raise ServiceResponseInvalid(f"the answer declared {content_type} but holds Parquet")
-        return voparquet.to_cache(raw, table, metadata=meta)
-    summary = results.to_parquet(raw, table, metadata=meta, serialization=declared,
-                                 on_rows=on_rows)
-    if formats.is_voparquet(content_type) and summary.status != "ERROR":
-        raise ServiceResponseInvalid(f"the answer declared {content_type} but holds XML")
-    return summary
-
-
-_REFUSED = "the result was refused"   # our words: never the service refusing the query
 
 
 def _looks_like_query_error(message: str) -> bool:

@@ -31,9 +31,9 @@ def pinned(root: Path) -> set[str]:
     return {p.name for p in folder.iterdir()} if folder.is_dir() else set()
 
 
-def _files(record: dict) -> set[str]:
-    shas = {record.get("result_sha256"), record.get("parquet_sha256")}
-    shas |= set((record.get("uploads") or {}).values())
+def _files(record) -> set[str]:
+    """The store objects a record (``JobRecord``) uses: result, Parquet copy, uploads."""
+    shas = {record.result_sha256, record.parquet_sha256, *record.uploads.values()}
     return {s for s in shas if s}
 
 
@@ -44,35 +44,35 @@ def prune(index, store, root: Path, *, max_bytes: int | None = None,
     now = time.time()
     keep_always = pinned(root)
     records = index.list(limit=None)
-    candidates = sorted((r for r in records if r["phase"] not in phases.ACTIVE
-                         and r["id"] not in keep_always),
-                        key=lambda r: r.get("finished") or r["created"])
+    candidates = sorted((r for r in records if r.phase not in phases.ACTIVE
+                         and r.id not in keep_always),
+                        key=lambda r: r.finished or r.created)
     sizes = {}
     for sha in {s for r in records for s in _files(r)}:
         if store.has(sha):
             sizes[sha] = store.path(sha).stat().st_size
     total = store.usage()[1]
     dropped: list[str] = []
-    kept = {r["id"]: r for r in records}
+    kept = {r.id: r for r in records}
 
     def referenced() -> set[str]:
         return {s for r in kept.values() for s in _files(r)}
 
     for record in candidates:
-        when = record.get("finished") or record["created"]
+        when = record.finished or record.created
         if older_than is not None and now - when > older_than:
-            dropped.append(record["id"])
-            kept.pop(record["id"])
+            dropped.append(record.id)
+            kept.pop(record.id)
     if max_bytes is not None:
         in_use = referenced()
         used = total - sum(sizes.get(s, 0) for s in set(sizes) - in_use)
         for record in candidates:
             if used <= max_bytes:
                 break
-            if record["id"] not in kept:
+            if record.id not in kept:
                 continue
-            dropped.append(record["id"])
-            kept.pop(record["id"])
+            dropped.append(record.id)
+            kept.pop(record.id)
             still = referenced()
             used -= sum(sizes.get(s, 0) for s in _files(record) - still)
     in_use = referenced()

@@ -31,25 +31,16 @@ from tenacity import retry, retry_if_exception, stop_after_attempt, wait_random_
 
 from jobdesk import phases
 from jobdesk.errors import IndexBusy, from_transport
+from jobdesk.record import COLUMN_TYPES, JSON_FIELDS, JobRecord
 
-JOB_COLUMNS: dict[str, type] = {
-    "id": str, "key": str, "service": str, "adql": str, "canonical": str, "maxrec": int,
-    "fmt": str, "label": str, "scope": str, "uploads": str, "phase": str, "job_url": str,
-    "run_id": str, "created": float, "intent": float, "submitted": float, "started": float,
-    "finished": float, "updated": float, "rows": int, "truncated": int, "result_sha256": str,
-    "result_bytes": int, "result_stat": str, "parquet_sha256": str, "parquet_stat": str,
-    "error": str, "notebook": str, "user": str, "host": str, "requests": int, "owner": str,
-    "lease_until": float, "layer": str, "warnings": str, "server": str, "estimate": str,
-    "analysis": str, "result_fmt": str, "fetch": str,
-    "unreachable_since": float, "last_error": str, "error_detail": str, "next_try": float,
-    "send_tries": int, "service_started": float, "service_finished": float,
-}
+# The jobs table's columns and their SQL types come from the typed record (jobdesk.record).
+JOB_COLUMNS: dict[str, type] = COLUMN_TYPES
 
 MIGRATIONS: list[Callable[[sqlite_utils.Database], None]] = []
 # added to jobs by a later migration, not by the first
 _LATER_COLUMNS = ("estimate", "analysis", "result_fmt", "fetch", "unreachable_since",
                   "last_error", "error_detail", "next_try", "send_tries", "service_started",
-                  "service_finished")
+                  "service_finished", "software")
 
 
 def _migration(fn: Callable[[sqlite_utils.Database], None]) -> Callable:
@@ -184,6 +175,39 @@ def _unreachable_state(db: sqlite_utils.Database) -> None:
             db.execute(f"ALTER TABLE jobs ADD COLUMN {name} {kind}")
 
 
+@_migration
+def _typed_records(db: sqlite_utils.Database) -> None:
+    # Records are read as typed JobRecords now (jobdesk/record.py). Make every stored row read
+    # as one: JSON fields that hold text which is not JSON are cleared (that text is kept in
+    # error_detail when the row has none), a phase this version does not know becomes LOST,
+    # and ``software`` keeps the versions of the process that fetched a result from now on.
+    # (idempotent, as the migrations before it)
+    have = {row[1] for row in db.execute("PRAGMA table_info(jobs)").fetchall()}
+    if "software" not in have:
+        db.execute("ALTER TABLE jobs ADD COLUMN software TEXT")
+    for name in JSON_FIELDS:
+        if name == "software":
+            continue
+        db.execute(f"UPDATE jobs SET error_detail = coalesce(error_detail, "
+                   f"'unreadable {name} kept by an earlier version: ' || {name}), {name} = NULL "
+                   f"WHERE {name} IS NOT NULL AND NOT json_valid({name})")
+    known = sorted(phases.UWS_PHASES + (phases.UNSENT, phases.SUBMITTED, phases.LOST,
+                                        phases.UNREACHED))
+    marks = ",".join("?" * len(known))
+    now = time.time()
+    db.execute(f"INSERT INTO phases (job_id, phase, at, note) SELECT id, 'LOST', ?, "
+               f"'phase ' || phase || ' unknown to this version' FROM jobs "
+               f"WHERE phase NOT IN ({marks})", [now, *known])
+    db.execute(f"UPDATE jobs SET phase = 'LOST', finished = coalesce(finished, ?) "
+               f"WHERE phase NOT IN ({marks})", [now, *known])
+    # Numbers some tool stored as text (SQLite keeps any value in any column).
+    for name, kind in COLUMN_TYPES.items():
+        if kind in (int, float) and name in have:
+            sql_type = "INTEGER" if kind is int else "REAL"
+            db.execute(f"UPDATE jobs SET {name} = CAST({name} AS {sql_type}) "
+                       f"WHERE typeof({name}) = 'text'")
+
+
 SCHEMA_VERSION = len(MIGRATIONS)
 BUSY_TIMEOUT_MS = 30_000
 
@@ -268,11 +292,11 @@ class Index:
 
     # --- reading ------------------------------------------------------------------------------
 
-    def get(self, job_id: str) -> dict | None:
+    def get(self, job_id: str) -> JobRecord | None:
         with self._lock:
             cur = self.db.execute("SELECT * FROM jobs WHERE id = ?", [job_id])
-            row = cur.fetchone()
-            return None if row is None else _decode(dict(zip([d[0] for d in cur.description], row)))
+            rows = _records(cur)
+        return rows[0] if rows else None
 
     def ids_starting(self, prefix: str, *, limit: int = 10) -> list[str]:
         """Job ids that begin with ``prefix`` (a range scan on the primary key), in id order."""
@@ -290,7 +314,7 @@ class Index:
     def list(self, *, phase: str | list[str] | None = None, service: str | None = None,
              text: str | None = None, limit: int | None = 50, offset: int = 0,
              sort: str = "created", notebook: str | None = None,
-             analysis: str | None = None) -> list[dict]:
+             analysis: str | None = None) -> list[JobRecord]:
         """Records, newest first (or largest first for ``sort`` = ``rows``/``result_bytes``,
         latest finished first for ``finished``); ``notebook=""`` picks jobs with no notebook."""
         where, args = _filters(phase, service, text, notebook, analysis)
@@ -301,10 +325,9 @@ class Index:
             sql += " LIMIT ? OFFSET ?"
             args += [int(limit), int(offset)]
         with self._lock:
-            cur = self.db.execute(sql, args)
-            return [_decode(r) for r in _dicts(cur)]
+            return _records(self.db.execute(sql, args))
 
-    def unfinished(self, *, service: str | None = None) -> list[dict]:
+    def unfinished(self, *, service: str | None = None) -> list[JobRecord]:
         """Records that still need work: active ones, and finished ones not yet fetched.
 
         Two indexed reads (never a scan of the finished jobs, which can number 100,000s).
@@ -318,9 +341,8 @@ class Index:
                f"UNION ALL SELECT * FROM jobs INDEXED BY idx_jobs_unfetched "
                f"WHERE phase = 'COMPLETED' AND parquet_sha256 IS NULL {where}")
         with self._lock:
-            cur = self.db.execute(sql, [*active, *args, *args])
-            rows = [_decode(r) for r in _dicts(cur)]
-        return sorted(rows, key=lambda r: r["created"])
+            rows = _records(self.db.execute(sql, [*active, *args, *args]))
+        return sorted(rows, key=lambda r: r.created)
 
     def count(self, *, phase: str | list[str] | None = None, service: str | None = None,
               text: str | None = None, notebook: str | None = None,
@@ -367,30 +389,24 @@ class Index:
 
     # --- writing ------------------------------------------------------------------------------
 
-    def find(self, key: str, *, reuse: Callable[[dict], bool]) -> dict | None:
+    def find(self, key: str, *, reuse: Callable[[JobRecord], bool]) -> JobRecord | None:
         """The newest record for ``key`` that ``reuse`` accepts, read without taking the write
         lock (the fast path of a cache hit; :meth:`claim` is the atomic one)."""
         with self._lock:
-            cur = self.db.execute("SELECT * FROM jobs WHERE key = ? ORDER BY created DESC", [key])
-            cols = [d[0] for d in cur.description]
-            rows = cur.fetchall()
-        for row in rows:
-            record = _decode(dict(zip(cols, row)))
-            if reuse(record):
-                return record
-        return None
+            records = _records(self.db.execute(
+                "SELECT * FROM jobs WHERE key = ? ORDER BY created DESC", [key]))
+        return next((r for r in records if reuse(r)), None)
 
-    def claim(self, key: str, fields: dict, *, reuse: Callable[[dict], bool]) -> tuple[dict, bool]:
+    def claim(self, key: str, fields: dict, *,
+              reuse: Callable[[JobRecord], bool]) -> tuple[JobRecord, bool]:
         """Return the newest record for ``key`` that ``reuse`` accepts, or insert ``fields``.
 
         Atomic across processes: of two simultaneous claims of one key, one inserts and the
         other gets that record back.
         """
         with self._write() as conn:
-            cur = conn.execute("SELECT * FROM jobs WHERE key = ? ORDER BY created DESC", [key])
-            cols = [d[0] for d in cur.description]
-            for row in cur.fetchall():
-                record = _decode(dict(zip(cols, row)))
+            for record in _records(conn.execute(
+                    "SELECT * FROM jobs WHERE key = ? ORDER BY created DESC", [key])):
                 if reuse(record):
                     return record, False
             now = time.time()
@@ -399,7 +415,7 @@ class Index:
             self._log_phase(record["id"], record["phase"], now, "recorded")
         return self.get(record["id"]), True
 
-    def insert(self, fields: dict) -> dict:
+    def insert(self, fields: dict) -> JobRecord:
         """Insert a record as given (used when importing from a group cache)."""
         now = time.time()
         with self._write() as conn:
@@ -407,7 +423,7 @@ class Index:
             self._log_phase(fields["id"], fields["phase"], fields.get("created", now), "imported")
         return self.get(fields["id"])
 
-    def update(self, job_id: str, *, note: str | None = None, **fields) -> dict:
+    def update(self, job_id: str, *, note: str | None = None, **fields) -> JobRecord:
         """Change fields of one record; a phase change is appended to the phase history."""
         with self._write() as conn:
             old = conn.execute("SELECT phase FROM jobs WHERE id = ?", [job_id]).fetchone()
@@ -442,8 +458,12 @@ class Index:
                              [owner, now + seconds, job_id])
             return free
 
-    def release(self, job_id: str, owner: str) -> None:
+    def release(self, job_id: str, owner: str, *, requests_add: int = 0) -> None:
+        """Give up the lease, adding the HTTP requests made under it in the same transaction."""
         with self._write() as conn:
+            if requests_add:
+                conn.execute("UPDATE jobs SET requests = coalesce(requests, 0) + ?, updated = ? "
+                             "WHERE id = ?", [int(requests_add), time.time(), job_id])
             conn.execute("UPDATE jobs SET owner = NULL, lease_until = NULL "
                          "WHERE id = ? AND owner = ?", [job_id, owner])
 
@@ -738,23 +758,21 @@ def _dicts(cur) -> list[dict]:
     return [dict(zip(cols, r)) for r in cur.fetchall()]
 
 
-_JSON_FIELDS = ("uploads", "warnings", "server", "estimate", "fetch")
+def _records(cur) -> list[JobRecord]:
+    """The job rows a cursor holds, as typed records."""
+    return [JobRecord.from_row(row) for row in _dicts(cur)]
 
 
-def _encode(record: dict) -> dict:
-    out = dict(record)
-    for name in _JSON_FIELDS:
-        if name in out and out[name] is not None and not isinstance(out[name], str):
-            out[name] = json.dumps(out[name], sort_keys=True)
+def _encode(fields: dict) -> dict:
+    """Field values as stored: JSON fields as JSON text (text given is checked to be JSON),
+    booleans as 0/1."""
+    out = dict(fields)
+    for name, value in out.items():
+        if name in JSON_FIELDS and value is not None:
+            if isinstance(value, str):
+                json.loads(value)   # ValueError now rather than an unreadable record later
+            else:
+                out[name] = json.dumps(value, sort_keys=True)
+        elif isinstance(value, bool):
+            out[name] = int(value)
     return out
-
-
-def _decode(record: dict) -> dict:
-    for name in _JSON_FIELDS:
-        value = record.get(name)
-        if isinstance(value, str):
-            try:
-                record[name] = json.loads(value)
-            except ValueError:
-                pass
-    return record

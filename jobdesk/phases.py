@@ -28,6 +28,8 @@ UWS_PHASES = (PENDING, QUEUED, EXECUTING, COMPLETED, ERROR, ABORTED, UNKNOWN, HE
 
 # Terminal for a client (UWS 1.1 §2.1.3): nothing more will happen on the service.
 TERMINAL = frozenset({COMPLETED, ERROR, ABORTED, ARCHIVED, LOST, UNREACHED})
+# Ended without a result: every terminal phase but COMPLETED.
+FAILED = TERMINAL - {COMPLETED}
 # Still worth waiting for.
 ACTIVE = frozenset({UNSENT, SUBMITTED, PENDING, QUEUED, EXECUTING, UNKNOWN, HELD, SUSPENDED})
 # Holding one of the service's run slots. HELD does not: the service waits for the client to

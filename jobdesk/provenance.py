@@ -52,47 +52,56 @@ def current_user() -> str:
         return "unknown"
 
 
-def build(record: dict, history: list[dict], *, columns: list[dict] | None = None) -> dict:
-    """The provenance of one job, as a JSON-safe dict."""
-    server = record.get("server") or {}
+def build(record, history: list[dict], *, columns: list[dict] | None = None) -> dict:
+    """The provenance of one job (a ``jobdesk.record.JobRecord``), as a JSON-safe dict.
+
+    ``software`` names the versions of the process that fetched the result, as recorded then
+    (empty for a record made before they were kept), never those of the process reading it."""
+    server = record.server or {}
     return {
         "jobdesk_provenance": 1,
-        "service": record["service"],
+        "service": record.service,
         "server": server,
-        "adql": record.get("adql"),
-        "canonical_adql": record.get("canonical"),
-        "key": record["key"],
-        "job_url": record.get("job_url"),
-        "run_id": record.get("run_id"),
-        "parameters": {"LANG": "ADQL", "MAXREC": record.get("maxrec"),
-                       "RESPONSEFORMAT": record.get("result_fmt") or record.get("fmt"),
-                       "UPLOAD": record.get("uploads") or {}},
+        "adql": record.adql,
+        "canonical_adql": record.canonical,
+        "key": record.key,
+        "job_url": record.job_url,
+        "run_id": record.run_id,
+        "parameters": {"LANG": "ADQL", "MAXREC": record.maxrec,
+                       "RESPONSEFORMAT": record.result_fmt or record.fmt,
+                       "UPLOAD": record.uploads},
         # the format the user asked for (None: chosen from the service's capabilities)
-        "format_requested": record.get("fmt"),
-        "scope": record.get("scope"),
-        "label": record.get("label"),
-        "phase": record.get("phase"),
+        "format_requested": record.fmt,
+        "scope": record.scope,
+        "label": record.label,
+        "phase": record.phase,
         "phase_history": [{"phase": h["phase"], "at": iso(h["at"]), "note": h.get("note")}
                           for h in history],
-        "created": iso(record.get("created")),
-        "started": iso(record.get("started")),
-        "finished": iso(record.get("finished")),
+        "created": iso(record.created),
+        "started": iso(record.started),
+        "finished": iso(record.finished),
         # The service's own times from the job document (UWS 1.1 §2.2.1: startTime, endTime).
         "service_start": utc(server.get("start_time")),
         "service_end": utc(server.get("end_time")),
-        "rows": record.get("rows"),
-        "truncated": bool(record.get("truncated")),
+        "rows": record.rows,
+        "truncated": bool(record.truncated),
         "columns": columns or [],
-        "result_sha256": record.get("result_sha256"),
-        "result_bytes": record.get("result_bytes"),
-        "parquet_sha256": record.get("parquet_sha256"),
-        "served_from": record.get("layer") or "personal",
-        "requests": record.get("requests"),
-        "notebook": record.get("notebook"),
-        "user": record.get("user"),
-        "host": record.get("host"),
-        "software": record.get("software") or versions(),
+        "result_sha256": record.result_sha256,
+        "result_bytes": record.result_bytes,
+        "parquet_sha256": record.parquet_sha256,
+        "served_from": record.layer or "personal",
+        "requests": record.requests,
+        "notebook": record.notebook,
+        "user": record.user,
+        "host": record.host,
+        "software": record.software or {},
     }
+
+
+def _jobdesk_version(prov: dict) -> str:
+    """``jobdesk 0.1.0``, or a plain note when the fetching process's version was not kept."""
+    version = (prov.get("software") or {}).get("jobdesk")
+    return f"jobdesk {version}" if version else "jobdesk (version not recorded)"
 
 
 VOPROV_NS = "http://www.ivoa.net/documents/ProvenanceDM/ns/voprov/"
@@ -160,7 +169,7 @@ def to_prov_json(prov: dict, *, exported: dict | None = None) -> dict:
             user: {"prov:type": qname("prov:Person"),
                    "prov:label": prov.get("user") or "unknown"},
             software: {"prov:type": qname("prov:SoftwareAgent"),
-                       "prov:label": "jobdesk " + prov["software"].get("jobdesk", "")},
+                       "prov:label": _jobdesk_version(prov)},
         },
         "wasGeneratedBy": {"_:gen1": {"prov:entity": result, "prov:activity": job}},
         "used": {"_:use1": {"prov:activity": job, "prov:entity": query}},
@@ -199,7 +208,7 @@ def account(prov: dict) -> str:
             f"({tables}):", *query,
             f"There is no result: the job {_no_result(prov.get('phase'))}, so no rows were "
             "returned and no result file exists.",
-            f"Sent with jobdesk {prov['software'].get('jobdesk', '')} "
+            f"Sent with {_jobdesk_version(prov)} "
             f"(job {prov.get('job_url') or 'never created on the service'}).",
         ])
     lines = [
@@ -208,7 +217,7 @@ def account(prov: dict) -> str:
         f"The query returned {prov.get('rows')} rows"
         + (" (TRUNCATED by a row or time limit: incomplete)" if prov.get("truncated") else "")
         + f"; the result file has SHA-256 {prov.get('result_sha256')}.",
-        f"Retrieved with jobdesk {prov['software'].get('jobdesk', '')} (job {prov.get('job_url')}).",
+        f"Retrieved with {_jobdesk_version(prov)} (job {prov.get('job_url')}).",
     ]
     return "\n".join(lines)
 

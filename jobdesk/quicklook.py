@@ -531,5 +531,5 @@ class QuickLooks:
 
 def for_job(job) -> tuple[Path, str]:
     """The Parquet path and checksum of a job's result (a truncated one too: it is a look)."""
-    path = job._result_path(allow_truncated=True)
+    path = job.result_path(allow_truncated=True)
     return path, job.record["parquet_sha256"]

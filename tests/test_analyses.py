@@ -52,7 +52,7 @@ def _analysis(desk, tap, name="stream-search"):
 
 def _snapshot(desk, name):
     steps = desk.index.steps(name)
-    return json.dumps([steps, [desk.index.get(s["job_id"]) for s in steps],
+    return json.dumps([steps, [desk.index.get(s["job_id"]).as_dict() for s in steps],
                        [desk.index.history(s["job_id"]) for s in steps]], sort_keys=True)
 
 

@@ -22,6 +22,7 @@ from jobdesk import (
     ServiceUnreachable, WaitTimeout, phases,
 )
 from jobdesk import desk as desk_module
+from jobdesk import lifecycle
 from jobdesk.localtap import serve
 from jobdesk.progress import LogProgress
 
@@ -41,7 +42,7 @@ def _free_port() -> int:
 def fast_retries(monkeypatch):
     # The pause before the next try of an unreachable service (5 s, doubling) is shortened so
     # the test stays short; the logic is the same.
-    monkeypatch.setattr(desk_module, "RETRY_PAUSE", 0.3)
+    monkeypatch.setattr(lifecycle, "RETRY_PAUSE", 0.3)
 
 
 def _no_library_text(text: str) -> None:

@@ -106,10 +106,11 @@ class GroupCaches:
                                   "jobdesk.Group(location, readonly=False)")
 
     def publish(self, record: dict, store, *, group: str | None = None) -> tuple[str, str]:
-        """Publish a complete record to ``group`` or the first read-write layer."""
-        from jobdesk.provenance import versions
+        """Publish a complete record (``JobRecord.as_dict()``) to ``group`` or the first
+        read-write layer; the manifest names the software that fetched it, not this process."""
         layer = self.target(group)
-        rel = layer.publish(record, store, publisher=publisher(), software=versions())
+        rel = layer.publish(record, store, publisher=publisher(),
+                            software=record.get("software"))
         return layer.name, rel
 
     # --- in-flight sharing ------------------------------------------------------------------

@@ -50,8 +50,8 @@ def test_held_job_frees_its_slot_and_is_rerun_only_when_one_is_free(uws, tmp_pat
                                                                     monkeypatch):
     # Not a mock: the pause between RUNs to a HELD job is shortened so that only the slot rule
     # can hold a RUN back while the other job runs.
-    import jobdesk.desk
-    monkeypatch.setattr(jobdesk.desk, "HELD_RETRY", 0.0)
+    import jobdesk.lifecycle
+    monkeypatch.setattr(jobdesk.lifecycle, "HELD_RETRY", 0.0)
     desk = Desk(tmp_path / "d", limits={uws.url: 1}, wait_window=5, attempts=2, timeout=10)
     held = desk.submit(uws.url, "SELECT * FROM hold_thrice")
     deadline = time.monotonic() + 10
