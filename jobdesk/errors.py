@@ -405,8 +405,8 @@ def error_document_message(body: bytes) -> str | None:
     The one reader of error documents, for HTTP error answers, synchronous answers and small
     downloaded results alike. DALI 1.1 §4.4.1: the QUERY_STATUS INFOs of the RESOURCE of type
     "results" count and the last one wins; without a typed resource any INFO outside a "meta"
-    resource counts (the same rule as ``results.scan``). The message is the service's words
-    exactly, inner whitespace included; only the ends are trimmed.
+    resource counts (:func:`status_that_counts`, which ``results.scan`` uses too). The message
+    is the service's words exactly, inner whitespace included; only the ends are trimmed.
     """
     try:
         root = SafeET.fromstring(body)
@@ -423,12 +423,21 @@ def error_document_message(body: bytes) -> str | None:
         above = _local(parent.tag) if parent is not None else ""
         where = (parent.get("type") or "") if above == "RESOURCE" else above
         statuses.append((where, (element.get("value") or "").strip().upper(), element.text or ""))
-    in_results = [s for s in statuses if s[0] == "results"]
-    elsewhere = [s for s in statuses if s[0] != "meta"]
-    chosen = (in_results or elsewhere or [("", "OK", "")])[-1]
+    chosen = status_that_counts(statuses) or ("", "OK", "")
     if chosen[1] != "ERROR":
         return None
     return chosen[2].strip() or _NO_MESSAGE
+
+
+def status_that_counts(statuses: list[tuple]) -> tuple | None:
+    """Of a document's QUERY_STATUS INFOs, as (where, value, text) in document order, the one
+    that counts: the last of the RESOURCE of type "results", else the last outside a "meta"
+    resource (DALI 1.1 §4.4.1); None when there is none. The one rule, for error documents
+    here and for the streaming scan of results (``jobdesk.votable_stream``)."""
+    in_results = [s for s in statuses if s[0] == "results"]
+    elsewhere = [s for s in statuses if s[0] != "meta"]
+    found = in_results or elsewhere
+    return found[-1] if found else None
 
 
 def _local(tag: object) -> str:
