@@ -18,7 +18,7 @@ from pathlib import Path
 
 from benchmarks.case2_download_memory import child, union_of
 from benchmarks.common import MB, CaseResult, Context, Row, timed
-from jobdesk import formats, results
+from jobdesk import formats, results, votable_stream
 from jobdesk.remote import Remote
 
 FORMATS = {"TABLEDATA": "votable", "BINARY2": "votable/b2", "VOParquet": formats.VOPARQUET,
@@ -79,15 +79,15 @@ def run(ctx: Context) -> CaseResult:
             src = ctx.work / "case10.vot"
             Remote(tap.url).download(url, src)
             out = ctx.work / "case10.parquet"
-            keep = results._declares_utf8
+            keep = votable_stream._declares_utf8
             bulk_runs, xml_runs = [], []
             for _ in range(3 if ctx.quick else 1):   # alternating: a busy neighbour hits both
                 bulk_runs.append(timed(lambda: results.to_parquet(src, out))[0])
-                results._declares_utf8 = lambda head: False
+                votable_stream._declares_utf8 = lambda head: False
                 try:
                     xml_runs.append(timed(lambda: results.to_parquet(src, out))[0])
                 finally:
-                    results._declares_utf8 = keep
+                    votable_stream._declares_utf8 = keep
             bulk_s, xml_s = min(bulk_runs), min(xml_runs)
             src.unlink(missing_ok=True)
             out.unlink(missing_ok=True)

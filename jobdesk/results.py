@@ -11,8 +11,6 @@ from __future__ import annotations
 import base64
 import json
 import os
-import sys
-import types
 from pathlib import Path
 from collections.abc import Callable
 from typing import Any
@@ -25,8 +23,6 @@ import pyarrow.parquet as pq
 from jobdesk import votable_stream
 from jobdesk.errors import error_document_message as error_message  # re-exported: public contract
 from jobdesk.votable_stream import ResultSummary, describe, scan  # re-exported: public contract
-# named by tests/test_tabledata_bulk.py through this module (the bulk path's own names)
-from jobdesk.votable_stream import _NotBulk, _TableDataSplitter  # noqa: F401
 
 __all__ = ["ResultSummary", "to_parquet", "scan", "load_table", "load_frame", "error_message",
            "read_metadata"]
@@ -35,29 +31,6 @@ ROW_GROUP_ROWS = 1_000_000    # larger row groups read back faster ...
 ROW_GROUP_BYTES = 8 << 20     # ... but are held, and encoded, in memory (peak ~3x this)
 SUMMARY_KEY = "jobdesk.summary"
 METADATA_KEY = "jobdesk.metadata"
-
-# The reader's settings, still reachable under this module's name: tests and benchmarks tune
-# them with ``results.READ_CHUNK = ...`` (monkeypatch). Reads and writes of these names go to
-# the one value ``jobdesk.votable_stream`` uses, so nothing here can go stale.
-_READER_SETTINGS = frozenset({"READ_CHUNK", "BATCH_CELLS", "BATCH_ROWS", "_declares_utf8"})
-
-
-def __getattr__(name: str):
-    if name in _READER_SETTINGS:
-        return getattr(votable_stream, name)
-    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
-
-
-class _ForwardingModule(types.ModuleType):
-    def __setattr__(self, name: str, value) -> None:
-        if name in _READER_SETTINGS:
-            setattr(votable_stream, name, value)
-        else:
-            super().__setattr__(name, value)
-
-
-sys.modules[__name__].__class__ = _ForwardingModule
-
 
 # --- the Parquet writer ------------------------------------------------------------------------
 

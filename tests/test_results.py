@@ -19,7 +19,7 @@ import pytest
 from astropy.io.votable import from_table, parse
 from astropy.table import MaskedColumn, Table
 
-from jobdesk import results
+from jobdesk import results, votable_stream
 from jobdesk.errors import ServiceResponseInvalid
 
 SEED = 20240611
@@ -103,9 +103,9 @@ def test_values_round_trip_as_astropy_reads_them(tmp_path, fmt):
 @pytest.mark.parametrize("fmt", SERIALIZATIONS)
 def test_many_batches_and_tiny_reads_give_the_same_values(tmp_path, fmt, monkeypatch):
     # Small batches and 1 kB reads: base64 and rows split across every possible boundary.
-    monkeypatch.setattr(results, "BATCH_CELLS", 700)
-    monkeypatch.setattr(results, "BATCH_ROWS", 50)
-    monkeypatch.setattr(results, "READ_CHUNK", 1024)
+    monkeypatch.setattr(votable_stream, "BATCH_CELLS", 700)
+    monkeypatch.setattr(votable_stream, "BATCH_ROWS", 50)
+    monkeypatch.setattr(votable_stream, "READ_CHUNK", 1024)
     monkeypatch.setattr(results, "ROW_GROUP_ROWS", 120)
     src = write_votable(invented_table(1500, seed=SEED + 1), tmp_path / "b.xml", fmt)
     out = tmp_path / "b.parquet"

@@ -15,7 +15,7 @@ import numpy as np
 import pytest
 from astropy.io.votable import parse
 
-from jobdesk import results
+from jobdesk import results, votable_stream
 from jobdesk.errors import ServiceResponseInvalid
 
 HEAD = ('<?xml version="1.0" encoding="UTF-8"?>\n'
@@ -111,18 +111,18 @@ def assert_same(ref, got):
 def bulk_calls(monkeypatch):
     """Counts the pieces the bulk path took and the ones it handed to the XML parser."""
     seen = {"bulk": 0, "xml": 0}
-    convert = results._TableDataSplitter._convert
+    convert = votable_stream._TableDataSplitter._convert
 
     def counting(self, body):
         try:
             got = convert(self, body)
-        except results._NotBulk:
+        except votable_stream._NotBulk:
             seen["xml"] += 1
             raise
         seen["bulk"] += 1
         return got
 
-    monkeypatch.setattr(results._TableDataSplitter, "_convert", counting)
+    monkeypatch.setattr(votable_stream._TableDataSplitter, "_convert", counting)
     return seen
 
 
@@ -130,7 +130,7 @@ def bulk_calls(monkeypatch):
 @pytest.mark.parametrize("chunk", [4 << 20, 1500, 97])
 def test_markup_falls_back_piece_by_piece_and_equals_astropy(tmp_path, monkeypatch, bulk_calls,
                                                               odd, chunk):
-    monkeypatch.setattr(results, "READ_CHUNK", chunk)
+    monkeypatch.setattr(votable_stream, "READ_CHUNK", chunk)
     data = document(ODD_ROWS[odd])
     summary, got = read_ours(tmp_path, data)
     ref = astropy_reads(data)
@@ -146,18 +146,18 @@ def test_markup_falls_back_piece_by_piece_and_equals_astropy(tmp_path, monkeypat
 
 
 def test_plain_rows_all_go_the_bulk_way_and_equal_the_xml_path(tmp_path, monkeypatch, bulk_calls):
-    monkeypatch.setattr(results, "READ_CHUNK", 2000)
+    monkeypatch.setattr(votable_stream, "READ_CHUNK", 2000)
     data = (HEAD + "".join(plain_row(i) for i in range(800)) + TAIL).encode()
     _, fast = read_ours(tmp_path, data, "fast")
     assert bulk_calls["xml"] == 0 and bulk_calls["bulk"] > 5
-    monkeypatch.setattr(results, "_declares_utf8", lambda head: False)   # the XML path only
+    monkeypatch.setattr(votable_stream, "_declares_utf8", lambda head: False)   # the XML path only
     _, slow = read_ours(tmp_path, data, "slow")
     assert_same(slow, fast)
     assert_same(astropy_reads(data), fast)
 
 
 def test_namespace_prefix_rows_are_read_in_bulk(tmp_path, monkeypatch, bulk_calls):
-    monkeypatch.setattr(results, "READ_CHUNK", 1500)
+    monkeypatch.setattr(votable_stream, "READ_CHUNK", 1500)
     data = document(ODD_ROWS["padded cells"]).decode()
     data = data.replace('xmlns="http://www.ivoa.net/xml/VOTable/v1.3"',
                         'xmlns:v="http://www.ivoa.net/xml/VOTable/v1.3"')
@@ -192,7 +192,7 @@ def test_bad_rows_raise_the_xml_paths_error(tmp_path, monkeypatch, bad, says):
     data = document(bad)
     with pytest.raises(ServiceResponseInvalid, match=says):
         read_ours(tmp_path, data, "fast")
-    monkeypatch.setattr(results, "_declares_utf8", lambda head: False)
+    monkeypatch.setattr(votable_stream, "_declares_utf8", lambda head: False)
     with pytest.raises(ServiceResponseInvalid, match=says):
         read_ours(tmp_path, data, "slow")
     assert not list(tmp_path.glob("*.partial"))
