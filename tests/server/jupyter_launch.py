@@ -86,8 +86,9 @@ class RunningJupyter:
 
     def __enter__(self) -> "RunningJupyter":
         self.notebooks.mkdir(parents=True, exist_ok=True)
-        config = {"ServerApp": {"jpserver_extensions": {"jobdesk.server": True},
-                                "tornado_settings": {"jobdesk": self.settings}}}
+        # jobdesk's server settings are traitlets of JobdeskServer (docs/settings.md)
+        config = {"ServerApp": {"jpserver_extensions": {"jobdesk.server": True}},
+                  "JobdeskServer": self.settings}
         for section, values in self.extra_config.items():
             config.setdefault(section, {}).update(values)
         config_file = self.workdir / "jupyter_test_config.json"
