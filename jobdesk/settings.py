@@ -164,6 +164,8 @@ class Settings:
         """These settings with some values given as arguments (None: keep), checked as
         :func:`build` checks them; limits merge per service, groups replace."""
         values, sources = _arguments(arguments, labels or {}, base=self)
+        if not values:
+            return self
         merged = dict(self.sources)
         merged.update(sources)
         return dataclasses.replace(self, **values, sources=MappingProxyType(merged))
