@@ -100,6 +100,9 @@ def _user_cache() -> Path:
 class Settings:
     """Every setting of a desk and of the server extension; build one with :func:`build`."""
 
+    # The defaults are the values the code had before settings were gathered here; the running
+    # limit of 4 and the tries are common practice, no source.
+
     root: Path = _setting(
         None, "the desk's folder: its SQLite index, its cached results, and config.toml if you "
               "put one there",

@@ -48,11 +48,16 @@ def _load_jupyter_server_extension(serverapp) -> None:
     """Register the REST routes and start the poller inside a running Jupyter Server."""
     from jupyter_server.utils import url_path_join
 
+    from jobdesk.errors import ConfigError
     from jobdesk.server.config import OLD_KEY
 
     web_app = serverapp.web_app
-    settings = JobdeskServer(parent=serverapp).settings(web_app.settings.get(OLD_KEY),
-                                                        log=serverapp.log)
+    try:
+        settings = JobdeskServer(parent=serverapp).settings(web_app.settings.get(OLD_KEY),
+                                                            log=serverapp.log)
+    except ConfigError as exc:   # the server runs on; jobdesk's routes are not added
+        serverapp.log.error("jobdesk: not started: %s", exc)
+        return
     runner = DeskRunner(settings=settings, log=serverapp.log)
     feed = ChangeFeed(runner, timeout=settings.feed_timeout, interval=settings.feed_interval)
     poller = Poller(settings=settings, interval=settings.poll_interval, log=serverapp.log)
