@@ -26,9 +26,15 @@ KNOWN_PHASES = (*phases.UWS_PHASES, phases.UNSENT, phases.SUBMITTED, phases.LOST
                 phases.UNREACHED)
 
 
+def _settings(args):
+    """The command's settings: the same builder as every desk, ``--root`` as an argument."""
+    from jobdesk.settings import build
+    return build(root=args.root)
+
+
 def _desk(args):
     from jobdesk.desk import Desk
-    return Desk(args.root)
+    return Desk(settings=_settings(args))
 
 
 def _job(desk, text: str):
@@ -491,6 +497,18 @@ def cmd_compare(args) -> int:
     return 0
 
 
+def cmd_settings(args) -> int:
+    settings = _settings(args)
+    values = settings.as_dict()
+    if args.json:
+        _dump({"settings": values, "sources": dict(settings.sources)})
+        return 0
+    for name, value in values.items():
+        shown = "none" if value in (None, [], {}) else value
+        print(f"{name:<14} {shown}   ({settings.sources.get(name, 'default')})")
+    return 0
+
+
 def cmd_demo(args) -> int:
     from jobdesk.demo import run
     return run(root=args.root, rows=args.rows)
@@ -684,6 +702,11 @@ def parser() -> argparse.ArgumentParser:
     s.add_argument("--report", help="write an HTML report here (and a .json twin)")
     s.add_argument("--json", action="store_true")
     s.set_defaults(func=cmd_compare)
+
+    s = sub.add_parser("settings", help="the settings this command would use, and where each "
+                                        "came from (docs/settings.md)")
+    s.add_argument("--json", action="store_true")
+    s.set_defaults(func=cmd_settings)
 
     s = sub.add_parser("demo", help="the whole story, offline, on the embedded TAP service "
                                     "(in a throwaway desk unless --root is given)")

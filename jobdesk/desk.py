@@ -16,8 +16,6 @@ import uuid
 import warnings
 from pathlib import Path
 
-import platformdirs
-
 from jobdesk import checks as query_checks
 from jobdesk import estimate as cost
 from jobdesk import analyses, formats, keys, metadata, phases, provenance, results, transfer
@@ -30,18 +28,18 @@ from jobdesk.errors import (
 )
 from jobdesk.groups import GroupCaches
 from jobdesk.index import Index, this_process
-from jobdesk.lifecycle import (  # noqa: F401  (limits and phase sets: public names of desk)
-    DEFAULT_RUNNING_LIMIT, FAILED, REFUSED, SEND_TRIES, USER_ABORT, Lifecycle, seconds_text,
-    transient)
+from jobdesk.lifecycle import (FAILED, REFUSED, USER_ABORT, Lifecycle, seconds_text,
+                               transient)
 from jobdesk.record import JobRecord
 from jobdesk.remote import Remote
+from jobdesk.settings import Settings, build as build_settings, default_root
 from jobdesk.store import Store
 
+# Settings (a desk's own, from jobdesk.settings) have their defaults there; these two names stay
+# for code that imports them.
+DEFAULT_RUNNING_LIMIT = Settings.default_limit   # jobs per service at once (common practice)
+SEND_TRIES = Settings.send_tries  # tries to create a job before its record ends UNREACHED
 UNREACHABLE_SLICES = 3        # with a timeout: consecutive failed slices before wait() gives up
-
-
-def default_root() -> Path:
-    return Path(os.environ.get("JOBDESK_HOME") or platformdirs.user_cache_dir("jobdesk"))
 
 
 def _seconds(value) -> float | None:
@@ -65,29 +63,40 @@ class Desk:
 
     def __init__(self, root: Path | str | None = None, groups=None, *, session=None,
                  scope: str | None = None, limits: dict[str, int] | None = None,
-                 wait_window: int = 30, attempts: int = 5, timeout: float = 30.0,
-                 send_tries: int = SEND_TRIES):
-        self.root = Path(root) if root is not None else default_root()
+                 wait_window: int | None = None, attempts: int | None = None,
+                 timeout: float | None = None, send_tries: int | None = None,
+                 settings: Settings | None = None):
+        # One settings object (docs/settings.md): defaults < config file < environment <
+        # these keywords (None: not given). ``settings=`` hands over one built elsewhere.
+        given = {"root": root, "groups": groups, "scope": scope, "limits": limits,
+                 "wait_window": wait_window, "attempts": attempts, "timeout": timeout,
+                 "send_tries": send_tries}
+        self.settings = (build_settings(**given) if settings is None
+                         else settings.replace(**given))
+        self.root = self.settings.root
         self.root.mkdir(parents=True, exist_ok=True)
         self.index = Index(self.root / "index.sqlite")
         self.store = Store(self.root)
         self.store.clean_temp()
         self.session = session
-        self.scope = scope
-        self.limits = {keys.service_id(k): v for k, v in (limits or {}).items()}
+        self.scope = self.settings.scope
+        # service id -> running limit; a service not named gets settings.default_limit
+        self.limits = self.settings.running_limits()
         self.owner = this_process()
         # How many times creating a job may fail for want of an answer before the record ends
         # UNREACHED (each try is itself ``attempts`` HTTP tries).
-        self.send_tries = max(1, int(send_tries))
-        self._remote_options = {"wait_window": wait_window, "attempts": attempts,
-                                "timeout": timeout}
+        self.send_tries = self.settings.send_tries
+        self._remote_options = {"wait_window": self.settings.wait_window,
+                                "attempts": self.settings.attempts,
+                                "timeout": self.settings.timeout}
         # Waiting goes in slices of one WAIT window (plus a second, so the window's own read
         # fits), renewing the lease between them; the last status read carries over.
-        self.drive_slice = wait_window + 1.0
+        self.drive_slice = self.settings.wait_window + 1.0
         self._sessions: dict[str, object] = {}
-        self.groups = GroupCaches(groups, root=self.root)  # lookup order: personal, then these
+        # lookup order: personal, then these
+        self.groups = GroupCaches(self.settings.groups, root=self.root)
         self.lifecycle = Lifecycle(self.index, self.store, self.groups, remote=self._remote,
-                                   owner=self.owner, limits=self.limits,
+                                   owner=self.owner, limit_for=self.settings.limit_for,
                                    send_tries=self.send_tries)
 
     def __repr__(self) -> str:

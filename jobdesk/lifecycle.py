@@ -34,10 +34,8 @@ from jobdesk.remote import Remote
 from jobdesk.store import Store, stat_stamp
 from jobdesk.transfer import FetchMeter
 
-DEFAULT_RUNNING_LIMIT = 4     # jobs per service at once; common practice, no source
 HELD_RETRY = 5.0              # seconds between PHASE=RUN to a HELD job; common practice, no source
 LEASE_SECONDS = 60.0          # a driver renews its lease at least this often
-SEND_TRIES = 3                # tries to create a job before its record ends UNREACHED
 RETRY_PAUSE = 5.0             # seconds before the 2nd try of an unreachable service, doubling
 RETRY_PAUSE_MAX = 60.0        # ... up to this (common practice, no source)
 FAILED = phases.FAILED
@@ -53,13 +51,13 @@ class Lifecycle:
     about a job once it is recorded."""
 
     def __init__(self, index: Index, store: Store, groups, *, remote: Callable[[str], Remote],
-                 owner: str, limits: dict[str, int], send_tries: int = SEND_TRIES):
+                 owner: str, limit_for: Callable[[str], int], send_tries: int):
         self.index = index
         self.store = store
         self.groups = groups
         self.remote = remote          # service id -> a Remote with that service's session
         self.owner = owner
-        self.limits = limits          # service id -> jobs at once (DEFAULT_RUNNING_LIMIT else)
+        self.limit_for = limit_for    # service id -> how many of its jobs may run at once
         self.send_tries = max(1, int(send_tries))
         self._last_status: dict[str, object] = {}   # job URL -> last JobStatus, across slices
         self._held_run: dict[str, float] = {}       # job URL -> when RUN was last sent HELD
@@ -71,7 +69,7 @@ class Lifecycle:
         the record as it is afterwards. Raises what creating it raised (the record says why)."""
         owner = owner or self.owner
         job_id = record.id
-        if not self.index.claim_start(job_id, limit=self._limit(record.service), owner=owner,
+        if not self.index.claim_start(job_id, limit=self.limit_for(record.service), owner=owner,
                                       seconds=LEASE_SECONDS):
             return self.index.get(job_id) or record
         remote = self.remote(record.service)
@@ -152,13 +150,10 @@ class Lifecycle:
         found = remote.find(run_id=record.run_id, after=after, adql=record.adql)
         return found[0] if found else None
 
-    def _limit(self, service: str) -> int:
-        return self.limits.get(service, DEFAULT_RUNNING_LIMIT)
-
     def slot_free(self, service: str) -> bool:
         """Whether the per-service limit lets one more of this desk's jobs run now."""
         return self.index.count(phase=sorted(phases.RUNNING), service=service) \
-            < self._limit(service)
+            < self.limit_for(service)
 
     # --- driving ------------------------------------------------------------------------------
 

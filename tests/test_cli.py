@@ -317,6 +317,25 @@ def test_publish_and_group_commands_go_through_the_desk(tap, capsys, tmp_path):
     _refused(code, err, 2, "usage:")
 
 
+def test_settings_command_shows_each_value_and_where_it_came_from(capsys, tmp_path):
+    root = tmp_path / "d"
+    root.mkdir()
+    (root / "config.toml").write_text('default_limit = 2\n[limits]\n"https://tap.alpha.invalid'
+                                      '/tap" = 1\n')
+    code, out, _ = run(capsys, root, "settings", "--json")
+    shown = json.loads(out)
+    assert code == 0 and shown["settings"]["root"] == str(root)
+    assert shown["settings"]["limits"] == {"https://tap.alpha.invalid/tap": 1}
+    assert shown["settings"]["default_limit"] == 2
+    assert shown["sources"]["default_limit"] == str(root / "config.toml")
+    assert shown["sources"]["root"] == "argument root"   # --root is an argument
+    code, out, _ = run(capsys, root, "settings")
+    assert code == 0 and f"default_limit  2   ({root / 'config.toml'})" in out
+    (root / "config.toml").write_text("default_limit = 0\n")
+    code, _, err = run(capsys, root, "settings")
+    _refused(code, err, 2, "config.toml: default_limit = 0", "expected a whole number")
+
+
 # --- shaping a query: tables, columns, find, check, estimate -----------------------------------
 
 

@@ -19,7 +19,7 @@ from pathlib import Path
 
 from jobdesk.errors import PublishRefused
 from jobdesk.groups import claims
-from jobdesk.groups.config import Group, as_groups, configured_groups
+from jobdesk.groups.config import Group, as_groups
 from jobdesk.groups.layer import GroupLayer, Served, open_layers, publisher
 
 __all__ = ["Group", "GroupCaches", "GroupLayer", "Served"]
@@ -33,7 +33,10 @@ class GroupCaches:
     def __init__(self, groups, *, root: Path):
         self.root = Path(root)
         self.state = self.root / STATE_DIR
-        chosen = configured_groups(self.root) if groups is None else as_groups(groups)
+        if groups is None:   # the config file's (``Desk`` passes its settings' groups)
+            from jobdesk.settings import build
+            groups = build(root=self.root).groups
+        chosen = as_groups(groups)
         self.layers = open_layers(chosen, local_state=self.state)
         # one personal index shares its own jobs already; a claim is for other desks
         desk = hashlib.sha256(str(self.root.resolve()).encode()).hexdigest()[:8]

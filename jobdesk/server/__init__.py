@@ -4,20 +4,19 @@ Loaded by Jupyter Server (enabled by ``jupyter-config/server-config/jobdesk.json
 wheel installs) so a JupyterLab sidebar can list, inspect and act on jobs without a kernel, and
 so jobs whose kernel has died still finish and download.
 
-Settings (``ServerApp.tornado_settings``, key ``"jobdesk"``), all optional:
-
-``root``            desk root (default: ``JOBDESK_HOME`` or the user cache directory)
-``poll_interval``   seconds between two poller passes (default 5; 0 disables the poller)
-``feed_timeout``    longest a change-feed request waits, in seconds (default 25)
-``feed_interval``   seconds between two looks at the index's change token (default 1)
+Settings: one ``jobdesk.settings.Settings``, built once when the extension loads and shared by
+the REST handlers' desk and the poller's. The server's own (``root``, ``poll_interval``,
+``feed_timeout``, ``feed_interval``) are traitlets of ``JobdeskServer``
+(``c.JobdeskServer.poll_interval = 2``); docs/settings.md lists every setting.
 """
 
 from __future__ import annotations
 
+from jobdesk.server.config import JobdeskServer
 from jobdesk.server.handlers import ChangeFeed, DeskRunner, routes
 from jobdesk.server.poller import Poller
 
-__all__ = ["ChangeFeed", "DeskRunner", "Poller", "routes"]
+__all__ = ["ChangeFeed", "DeskRunner", "JobdeskServer", "Poller", "routes"]
 
 
 SIDEBAR_MISSING = ("the jobdesk sidebar is not built: building it needs Node.js 20+ and npm at "
@@ -49,13 +48,20 @@ def _load_jupyter_server_extension(serverapp) -> None:
     """Register the REST routes and start the poller inside a running Jupyter Server."""
     from jupyter_server.utils import url_path_join
 
+    from jobdesk.errors import ConfigError
+    from jobdesk.server.config import OLD_KEY
+
     web_app = serverapp.web_app
-    options = dict(web_app.settings.get("jobdesk") or {})
-    runner = DeskRunner(root=options.get("root"), log=serverapp.log)
-    feed = ChangeFeed(runner, timeout=float(options.get("feed_timeout", 25)),
-                      interval=float(options.get("feed_interval", 1)))
-    poller = Poller(root=options.get("root"), interval=float(options.get("poll_interval", 5)),
-                    log=serverapp.log)
+    try:
+        settings = JobdeskServer(parent=serverapp).settings(web_app.settings.get(OLD_KEY),
+                                                            log=serverapp.log)
+    except ConfigError as exc:   # the server runs on; jobdesk's routes are not added
+        serverapp.log.error("jobdesk: not started: %s", exc)
+        return
+    runner = DeskRunner(settings=settings, log=serverapp.log)
+    feed = ChangeFeed(runner, timeout=settings.feed_timeout, interval=settings.feed_interval)
+    poller = Poller(settings=settings, interval=settings.poll_interval, log=serverapp.log)
+    web_app.settings["jobdesk_settings"] = settings
     web_app.settings["jobdesk_runner"] = runner
     web_app.settings["jobdesk_feed"] = feed
     web_app.settings["jobdesk_poller"] = poller

@@ -68,8 +68,9 @@ MAX_PREVIEW_ROWS = 200
 class DeskRunner:
     """One ``Desk`` for the server process and the threads its calls run on."""
 
-    def __init__(self, root: str | None = None, *, log=None, threads: int = 4):
-        self.root = root
+    def __init__(self, root: str | None = None, *, settings=None, log=None, threads: int = 4):
+        self.settings = settings   # jobdesk.settings.Settings built once for the server, or None
+        self.root = str(settings.root) if settings is not None else root
         self.log = log
         self._desk = None
         self._lock = threading.Lock()
@@ -84,7 +85,8 @@ class DeskRunner:
             if self._desk is None:
                 from jobdesk.desk import Desk  # imported late: the server starts even if it fails
 
-                self._desk = Desk(self.root)
+                self._desk = (Desk(settings=self.settings) if self.settings is not None
+                              else Desk(self.root))
             return self._desk
 
     async def run(self, fn: Callable[..., Any], *args, **kwargs) -> Any:

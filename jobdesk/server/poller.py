@@ -19,10 +19,13 @@ from jobdesk.index import this_process
 
 
 class Poller:
-    """Calls ``Desk(root).step(owner=...)`` every ``interval`` seconds on a daemon thread."""
+    """Calls ``Desk(root).step(owner=...)`` every ``interval`` seconds on a daemon thread
+    (``Desk(settings=...)`` when given the server's settings)."""
 
-    def __init__(self, root: str | None = None, *, interval: float = 5.0, log=None):
-        self.root = root
+    def __init__(self, root: str | None = None, *, settings=None, interval: float = 5.0,
+                 log=None):
+        self.settings = settings
+        self.root = str(settings.root) if settings is not None else root
         self.interval = interval
         self.log = log or logging.getLogger("jobdesk.server.poller")
         self.owner = this_process()  # host:pid, so a dead server's lease is seen as free
@@ -49,7 +52,8 @@ class Poller:
         if self._desk is None:
             from jobdesk.desk import Desk
 
-            self._desk = Desk(self.root)
+            self._desk = (Desk(settings=self.settings) if self.settings is not None
+                          else Desk(self.root))
         moved = self._desk.step(owner=self.owner) or 0
         self.passes += 1
         self.moved += moved

@@ -77,6 +77,12 @@ class RunningJupyter:
             if not link.exists():
                 link.symlink_to(bundle, target_is_directory=True)
             env["JUPYTER_DATA_DIR"] = str(data)
+        # The server imports the jobdesk these tests import (this checkout), not whichever one
+        # is installed in the environment.
+        import jobdesk
+
+        checkout = str(Path(jobdesk.__file__).resolve().parents[1])
+        env["PYTHONPATH"] = os.pathsep.join(p for p in (checkout, env.get("PYTHONPATH")) if p)
         env.update(JOBDESK_HOME=str(self.desk_root),
                    JUPYTER_CONFIG_DIR=str(self.workdir / "config"),
                    JUPYTER_RUNTIME_DIR=str(self.workdir / "runtime"),
@@ -86,8 +92,9 @@ class RunningJupyter:
 
     def __enter__(self) -> "RunningJupyter":
         self.notebooks.mkdir(parents=True, exist_ok=True)
-        config = {"ServerApp": {"jpserver_extensions": {"jobdesk.server": True},
-                                "tornado_settings": {"jobdesk": self.settings}}}
+        # jobdesk's server settings are traitlets of JobdeskServer (docs/settings.md)
+        config = {"ServerApp": {"jpserver_extensions": {"jobdesk.server": True}},
+                  "JobdeskServer": self.settings}
         for section, values in self.extra_config.items():
             config.setdefault(section, {}).update(values)
         config_file = self.workdir / "jupyter_test_config.json"
