@@ -27,7 +27,7 @@ from jobdesk.errors import (
     ResultUnavailable, ServiceUnreachable, WaitTimeout, PlanNotFound,
 )
 from jobdesk.groups import GroupCaches
-from jobdesk.index import Index, this_process
+from jobdesk.index import GROUPINGS, Index, this_process
 from jobdesk.lifecycle import (FAILED, REFUSED, USER_ABORT, Lifecycle, seconds_text,
                                transient)
 from jobdesk.record import JobRecord
@@ -233,6 +233,18 @@ class Desk:
         service = keys.service_id(service) if service else None
         return self.index.count(phase=phase, service=service, text=text, notebook=notebook,
                                 analysis=analysis)
+
+    def job_groups(self, by: str, *, phase=None, service=None, text=None) -> list[dict]:
+        """Jobs per ``by`` (``notebook`` or ``analysis``; index.GROUPINGS): how many, how many
+        cached, their cached bytes and rows, largest first (one grouped query)."""
+        if by not in GROUPINGS:
+            raise ValueError(f"cannot group jobs by {by!r}; one of {', '.join(GROUPINGS)}")
+        service = keys.service_id(service) if service else None
+        return self.index.groups(by, phase=phase, service=service, text=text)
+
+    def change_token(self) -> str:
+        """A cheap value that changes whenever any record changes (for change feeds)."""
+        return self.index.version()
 
     def job(self, job_id: str) -> "Job":
         record = self.index.get(job_id)

@@ -222,15 +222,15 @@ def canonical_adql(adql: str) -> Canonical:
     Adds what a real parser tells about the query (tables read, reasons it is not
     repeatable) to :func:`canonical_text`; that parse costs far more than the key does.
     """
-    text, parsed = canonical_text(adql)
+    text, parsed = canonical_text(adql)    # tokenized there (and cached for the key)
+    read = _read_with_parser(text) if parsed else None
+    if read is not None:
+        warnings, tables = read
+        return Canonical(text, True, warnings, tables)
+    # Only a query the parser cannot read is tokenized again, for the heuristics.
     tokens, _ = _tokenize(adql)
-    if not parsed:
-        return Canonical(adql, False, _heuristic_warnings(tokens), _heuristic_tables(tokens))
-    read = _read_with_parser(text)
-    if read is None:
-        return Canonical(text, True, _heuristic_warnings(tokens), _heuristic_tables(tokens))
-    warnings, tables = read
-    return Canonical(text, True, warnings, tables)
+    return Canonical(text if parsed else adql, parsed, _heuristic_warnings(tokens),
+                     _heuristic_tables(tokens))
 
 
 def _read_with_parser(text: str) -> tuple[tuple[str, ...], tuple[str, ...]] | None:

@@ -170,10 +170,12 @@ class Lifecycle:
             return False
         if not self.index.take_lease(record.id, self.owner, LEASE_SECONDS):
             return False
+        remote = self.remote(record.service)
         try:
-            self.drive(record, deadline=until, on_status=on_status, on_transfer=on_transfer)
+            self.drive(record, remote, deadline=until, on_status=on_status,
+                       on_transfer=on_transfer)
         finally:
-            self.index.release(record.id, self.owner)
+            self.index.release(record.id, self.owner, requests_add=remote.requests)
         return True
 
     def step(self, *, owner: str | None = None, service: str | None = None) -> int:
@@ -192,22 +194,22 @@ class Lifecycle:
                 if record.phase == phases.UNSENT:
                     advanced += self.start(record, owner=owner).phase != phases.UNSENT
                 elif self.index.take_lease(record.id, owner, LEASE_SECONDS):
+                    remote = self.remote(record.service)
                     try:
-                        self.drive(record, deadline=None, once=True)
+                        self.drive(record, remote, deadline=None, once=True)
                         advanced += 1
                     finally:
-                        self.index.release(record.id, owner)
+                        self.index.release(record.id, owner, requests_add=remote.requests)
             except JobdeskError:
                 continue  # recorded on the job; the next pass tries again where it makes sense
         return advanced
 
-    def drive(self, record: JobRecord, *, deadline: float | None, once: bool = False,
-              on_status=None, on_transfer=None) -> JobRecord:
+    def drive(self, record: JobRecord, remote: Remote, *, deadline: float | None,
+              once: bool = False, on_status=None, on_transfer=None) -> JobRecord:
         """Wait on the service (up to ``deadline``, monotonic) and fetch the result once it is
         COMPLETED; ``on_transfer(done_bytes, total_bytes_or_None)`` follows the download.
-        The caller holds the job's lease."""
+        The caller holds the job's lease, and adds ``remote.requests`` when it releases it."""
         job_id = record.id
-        remote = self.remote(record.service)
         ran = False
 
         def trouble(exc) -> None:
@@ -274,7 +276,6 @@ class Lifecycle:
             self._unreachable(self.index.get(job_id) or record, exc)
             raise
         finally:
-            self.index.update(job_id, requests_add=remote.requests)
             self._announce(job_id)
         return self.index.get(job_id)
 

@@ -172,5 +172,22 @@ def describe() -> list[tuple[str, str, str]]:
 
 def _type_text(hint) -> str:
     if isinstance(hint, types.UnionType):
-        return " | ".join(_type_text(t) for t in typing.get_args(hint))
+        return " or ".join(_type_text(t) for t in typing.get_args(hint))
     return "None" if hint is type(None) else getattr(hint, "__name__", str(hint))
+
+
+def reference() -> str:
+    """docs/job-record.md: every field of the job record (``python -m jobdesk.record``)."""
+    lines = ["# The job record", "",
+             "Every field jobdesk keeps about a job: a column of the index's `jobs` table, an",
+             "attribute of `jobdesk.record.JobRecord`, a key of `Job.record` and of the REST API's",
+             "job object. Times are unix seconds; `dict`/`list` fields are stored as JSON.",
+             "Generated from jobdesk/record.py by `python -m jobdesk.record > docs/job-record.md`",
+             "(tests/test_record.py checks it is current).", "",
+             "| field | type | meaning |", "|---|---|---|"]
+    lines += [f"| `{name}` | `{kind}` | {meaning} |" for name, kind, meaning in describe()]
+    return "\n".join(lines) + "\n"
+
+
+if __name__ == "__main__":
+    print(reference(), end="")

@@ -36,10 +36,8 @@ def init_group(location: str, *, name: str | None = None, umask: int = layout.DE
         root.mkdir(parents=True, exist_ok=True)
         gid = grp.getgrnam(unix_group).gr_gid if unix_group else root.stat().st_gid
         storage.set_policy(umask, gid)
-        storage._own(root, layout.dir_mode(umask))
-        for sub in (layout.OBJECTS, layout.MANIFESTS, layout.CLAIMS, layout.TMP,
-                    layout.QUARANTINE):
-            storage._mkdirs(root / sub)
+        storage.make_dirs((layout.OBJECTS, layout.MANIFESTS, layout.CLAIMS, layout.TMP,
+                           layout.QUARANTINE))
     storage.put_bytes(layout.GROUP_FILE, json.dumps(policy, indent=1).encode("utf-8"))
     return policy
 

@@ -95,6 +95,13 @@ class PosixStorage:
     def _group(self) -> int:
         return self.gid if self.gid is not None else self.root.stat().st_gid
 
+    def make_dirs(self, subdirs) -> None:
+        """Give the root the policy's mode and group, and create ``subdirs`` under it the same
+        way (a new group cache's layout)."""
+        self._own(self.root, layout.dir_mode(self.umask))
+        for sub in subdirs:
+            self._mkdirs(self.root / sub)
+
     def _mkdirs(self, path: Path) -> None:
         """Create missing directories with the policy's mode, setgid and the group's owner."""
         missing = []

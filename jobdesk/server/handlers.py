@@ -100,7 +100,7 @@ class DeskRunner:
 
 def change_token(desk) -> str:
     """The index's cheap "something changed" value (row count and newest update time)."""
-    return desk.index.version()
+    return desk.change_token()
 
 
 class ChangeFeed:
@@ -236,15 +236,6 @@ def _sort(handler: DeskHandler) -> str:
     return sort
 
 
-def _where(desk, filters: dict) -> dict:
-    """Filters for the index: the service as the index spells it; a grouping column another
-    version of the index lacks (``analysis``) matches nothing rather than failing."""
-    where = dict(filters)
-    if where.get("service"):
-        where["service"] = service_id(where["service"])
-    return where
-
-
 def _int_arg(handler: DeskHandler, name: str, default: int, low: int, high: int) -> int:
     raw = handler.get_argument(name, None)
     if raw is None or raw == "":
@@ -258,19 +249,14 @@ def _int_arg(handler: DeskHandler, name: str, default: int, low: int, high: int)
 
 def _list_page(desk, filters: dict, limit: int, offset: int, sort: str = "created") -> dict:
     """One page: its records in one query, the total in one count (and the change token)."""
-    if "analysis" in filters and "analysis" not in desk.index.columns():
-        return {"jobs": [], "total": 0, "limit": limit, "offset": offset, "sort": sort,
-                "token": change_token(desk)}
     jobs = desk.records(**filters, limit=limit, offset=offset, sort=sort)
     return {"jobs": jobs, "total": desk.count(**filters), "limit": limit, "offset": offset,
             "sort": sort, "token": change_token(desk)}
 
 
 def _groups(desk, by: str, filters: dict) -> dict:
-    where = _where(desk, filters)
-    where.pop("notebook", None), where.pop("analysis", None)
-    return {"by": by, "available": by in desk.index.columns(),
-            "groups": desk.index.groups(by, **where)}
+    where = {k: v for k, v in filters.items() if k not in ("notebook", "analysis")}
+    return {"by": by, "available": True, "groups": desk.job_groups(by, **where)}
 
 
 def _details(desk, job_id: str) -> dict:
@@ -417,7 +403,7 @@ class SnippetHandler(DeskHandler):
 
 def _analysis_steps(desk, name: str) -> dict:
     return {"name": name, "jobs": [j.record for j in desk.analysis_jobs(name)],
-            "plans": [p["id"] for p in desk.index.plans(name)]}
+            "plans": next((a["plans"] for a in desk.analyses() if a["name"] == name), [])}
 
 
 def _compare(desk, old: str, new: str, key: str | None) -> dict:
