@@ -29,8 +29,9 @@ import pyarrow.csv as pacsv
 import pyarrow.parquet as pq
 from defusedxml.ElementTree import DefusedXMLParser
 
+from jobdesk.documents import error_document_message as error_message
+from jobdesk.documents import query_status
 from jobdesk.errors import ServiceResponseInvalid, shorten
-from jobdesk.errors import error_document_message as error_message
 
 __all__ = ["ResultSummary", "to_parquet", "scan", "load_table", "load_frame", "error_message",
            "read_metadata"]
@@ -712,13 +713,8 @@ class _Reader:
                 self.sink.write(cols, rows)
 
     def summary(self) -> ResultSummary:
-        # DALI 1.1 §4.4.1: the QUERY_STATUS INFOs of the results RESOURCE count, the last one
-        # wins (OVERFLOW follows the TABLE); without a typed resource, any RESOURCE, then any INFO.
-        in_results = [s for s in self.statuses if s[0] == "results"]
-        elsewhere = [s for s in self.statuses if s[0] != "meta"]
-        chosen = (in_results or elsewhere or [("", "OK", None)])[-1]
-        _, status, message = chosen
-        return ResultSummary(rows=self.rows, status=status or "OK", message=message,
+        status, message = query_status(self.statuses)  # DALI 1.1 §4.4.1, as error documents
+        return ResultSummary(rows=self.rows, status=status, message=message,
                              fields=[f.describe() for f in self.fields], infos=dict(self.infos))
 
 
