@@ -11,11 +11,8 @@ from __future__ import annotations
 
 import errno
 import sqlite3
-from xml.etree.ElementTree import ParseError
 
 import requests
-from defusedxml import DefusedXmlException
-from defusedxml import ElementTree as SafeET
 
 
 class JobdeskError(Exception):
@@ -394,56 +391,6 @@ def _short(value: object) -> str:
     return shorten(str(value), one_line=True)
 
 
-# --- the service's own words in an error document ----------------------------------------------
-
-_NO_MESSAGE = "the service reported an error without a message"
-
-
-def error_document_message(body: bytes) -> str | None:
-    """The message of a DALI error VOTable (QUERY_STATUS=ERROR), else None.
-
-    The one reader of error documents, for HTTP error answers, synchronous answers and small
-    downloaded results alike. DALI 1.1 §4.4.1: the QUERY_STATUS INFOs of the RESOURCE of type
-    "results" count and the last one wins; without a typed resource any INFO outside a "meta"
-    resource counts (:func:`status_that_counts`, which ``results.scan`` uses too). The message
-    is the service's words exactly, inner whitespace included; only the ends are trimmed.
-    """
-    try:
-        root = SafeET.fromstring(body)
-    except (ParseError, DefusedXmlException, ValueError):
-        return None
-    if _local(root.tag) != "VOTABLE":
-        return None
-    parents = {child: parent for parent in root.iter() for child in parent}
-    statuses: list[tuple[str, str, str]] = []  # (where, value, text), in document order
-    for element in root.iter():
-        if _local(element.tag) != "INFO" or element.get("name") != "QUERY_STATUS":
-            continue
-        parent = parents.get(element)
-        above = _local(parent.tag) if parent is not None else ""
-        where = (parent.get("type") or "") if above == "RESOURCE" else above
-        statuses.append((where, (element.get("value") or "").strip().upper(), element.text or ""))
-    chosen = status_that_counts(statuses) or ("", "OK", "")
-    if chosen[1] != "ERROR":
-        return None
-    return chosen[2].strip() or _NO_MESSAGE
-
-
-def status_that_counts(statuses: list[tuple]) -> tuple | None:
-    """Of a document's QUERY_STATUS INFOs, as (where, value, text) in document order, the one
-    that counts: the last of the RESOURCE of type "results", else the last outside a "meta"
-    resource (DALI 1.1 §4.4.1); None when there is none. The one rule, for error documents
-    here and for the streaming scan of results (``jobdesk.votable_stream``)."""
-    in_results = [s for s in statuses if s[0] == "results"]
-    elsewhere = [s for s in statuses if s[0] != "meta"]
-    found = in_results or elsewhere
-    return found[-1] if found else None
-
-
-def _local(tag: object) -> str:
-    return tag.rpartition("}")[2] if isinstance(tag, str) else ""
-
-
 # --- warnings ----------------------------------------------------------------------------------
 
 
@@ -492,4 +439,7 @@ def deprecated_alias(module: str, name: str, namespace: dict):
 
 
 def __getattr__(name: str):
+    if name == "error_document_message":  # moved to jobdesk.documents, with the other readers
+        from jobdesk.documents import error_document_message
+        return error_document_message
     return deprecated_alias(__name__, name, globals())

@@ -1,4 +1,5 @@
-"""Talking UWS 1.1 / TAP 1.1 to one service: create, run, wait, abort, delete, find, download.
+"""Talking UWS 1.1 / TAP 1.1 to one service over HTTP: create, run, wait, abort, delete, find,
+download.
 
 This is the only module that speaks HTTP and the only place that retries (with tenacity):
 HTTP 5xx and 429 (honouring ``Retry-After``), connection failures and timeouts are retried a
@@ -6,7 +7,8 @@ bounded number of times, then become :class:`~jobdesk.errors.ServiceUnreachable`
 :class:`~jobdesk.errors.ServiceRefused`.  Requests that change state on the service are
 written so that a retry after a lost answer cannot do harm: ``RUN`` is never repeated on a job
 that has left PENDING, and ``DELETE`` does not follow its redirect to the (possibly huge) job
-list.  Every XML document is parsed with defusedxml.  Whatever the session carries (tokens,
+list.  What comes back is read by :mod:`jobdesk.documents` (job documents, job lists,
+capabilities, error documents), safely parsed there.  Whatever the session carries (tokens,
 cookies, passwords) is scrubbed from every message this module formats.
 """
 
@@ -22,26 +24,27 @@ import re
 import threading
 import time
 from collections.abc import Callable, Iterator, Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
 from typing import Any
 from urllib.parse import urljoin, urlsplit, urlunsplit
-from xml.etree.ElementTree import Element, ParseError
 
 import requests
 import urllib3
-from defusedxml import DefusedXmlException
-from defusedxml import ElementTree as SafeET
 from tenacity import Retrying, retry_if_exception_type, stop_after_attempt
 
-from jobdesk import phases
+from jobdesk import documents, phases
+# What the service sends is read by jobdesk.documents; these names stay importable from here
+# (JobStatus is part of this module's contract, the other two are what it has always called them).
+from jobdesk.documents import JobStatus
+from jobdesk.documents import error_document_message as _error_votable_message
+from jobdesk.documents import job_status as _job_status
 from jobdesk.errors import (
     BadServiceURL,
     JobdeskError,
     JobFailed,
     JobLost,
-    NotATapService,
     QueryRejected,
     ServiceRefused,
     ServiceResponseInvalid,
@@ -51,14 +54,11 @@ from jobdesk.errors import (
     from_transport,
     shorten,
 )
-from jobdesk.errors import error_document_message as _error_votable_message
 
 log = logging.getLogger(__name__)
 
-XLINK_HREF = "{http://www.w3.org/1999/xlink}href"
 CHUNK = 1 << 20  # 1 MiB: download buffer, so memory does not grow with the result
 FIRST_POLL = 0.2  # seconds before the first poll when WAIT is not available
-MESSAGE_LIMIT = 4000  # characters of a service's error message kept (common practice, no source)
 FIND_LIMIT = 50  # job-list entries considered, and job documents read, by find()
 CAPABILITIES_LIMIT = 4 << 20  # bytes of a VOSI capabilities document read at most
 # UWS 1.1 §2.2.1.2: WAIT blocks only while the job is in one of these phases.
@@ -66,24 +66,6 @@ WAITABLE = frozenset({phases.PENDING, phases.QUEUED, phases.EXECUTING})
 _UPLOAD_NAME = re.compile(r"[A-Za-z][A-Za-z0-9_]*\Z")  # ADQL 2.1 regular identifier
 _BENIGN_HEADERS = frozenset({"user-agent", "accept", "accept-encoding", "connection",
                              "accept-language", "cache-control", "content-type"})
-
-
-@dataclass
-class JobStatus:
-    """One reading of a UWS job document."""
-
-    url: str
-    phase: str
-    run_id: str | None
-    uws_version: str | None  # "1.1", or None for a UWS 1.0 document (no version attribute)
-    creation_time: str | None
-    start_time: str | None
-    end_time: str | None
-    destruction: str | None
-    error_summary: str | None  # the errorSummary message
-    error_type: str | None  # transient | fatal
-    result_url: str | None  # href of the result named "result", else the first result
-    parameters: dict[str, str] = field(default_factory=dict)  # names upper-cased (TAP: case-insensitive)
 
 
 @dataclass
@@ -186,13 +168,12 @@ class Remote:
             return urljoin(response.url or url, location)
         if response.status_code == 200:
             # Not what UWS asks for, but some servers answer with the job document itself.
-            root = _parse_xml(response.content, self.service, "job document")
-            job_id = _child_text(root, "jobId")
-            if _local(root.tag) == "job" and job_id:
+            job_id = documents.job_id(response.content, self.service)
+            if job_id:
                 return f"{url}/{job_id}"
         raise ServiceResponseInvalid(
             f"creating a job gave HTTP {response.status_code} without a job URL (UWS 1.1 §2.2.3.1 "
-            f"asks for 303 + Location): {_snippet(response.content)}", service=self.service)
+            f"asks for 303 + Location): {documents.snippet(response.content)}", service=self.service)
 
     def run(self, job_url: str) -> None:
         """Send ``PHASE=RUN`` once; after a lost answer, re-read the phase before trying again.
@@ -327,7 +308,7 @@ class Remote:
         """
         response = self._request("GET", f"{job_url}/error", accept=(404, 410),
                                  what="reading the error")
-        detail = "" if response.status_code in (404, 410) else _document_message(response.content)
+        detail = "" if response.status_code in (404, 410) else documents.document_message(response.content)
         if detail:
             return detail
         return self.status(job_url).error_summary or ""
@@ -347,41 +328,34 @@ class Remote:
         limit = max(1, int(limit))
         listing = self._request("GET", f"{self.base_url}/async",
                                 params={"AFTER": after, "LAST": str(limit)}, what="listing jobs")
-        root = _parse_xml(listing.content, self.service, "job list")
-        if _local(root.tag) != "jobs":
-            raise ServiceResponseInvalid(f"expected a UWS job list, got <{_local(root.tag)}>: "
-                                         f"{_snippet(listing.content)}", service=self.service)
-        since = _when(after)
-        wanted_query = _newlines(adql) if adql is not None else None
+        since = documents.parse_time(after)
         found: dict[str, datetime | None] = {}
         reads = 0
-        for ref in _newest_first(_children(root, "jobref"), limit):
-            href = _href(ref)
-            url = urljoin(listing.url or self.base_url + "/async/",
-                          href) if href else f"{self.base_url}/async/{ref.get('id')}"
-            listed_run = _child_text(ref, "runId")
-            created = _when(_child_text(ref, "creationTime"))
+        for ref in documents.job_list(listing.content, self.service,
+                                      base=listing.url or self.base_url + "/async/",
+                                      jobs_url=f"{self.base_url}/async", limit=limit):
+            created = ref.created
             if created is not None and since is not None and created < since:
                 continue
-            if listed_run is not None:
-                if run_id is not None and listed_run == run_id:
-                    found[url] = created
+            if ref.run_id is not None:
+                if run_id is not None and ref.run_id == run_id:
+                    found[ref.url] = created
                 continue  # the service keeps RUNIDs and this one is not ours
             if reads >= limit:
                 break
             reads += 1
             try:
-                job = self.status(url)
+                job = self.status(ref.url)
             except JobLost:
                 continue  # destroyed between the list and now
-            created = _when(job.creation_time) or created
+            created = documents.parse_time(job.creation_time) or created
             if since is not None and created is not None and created < since:
                 continue
             same_run = run_id is not None and job.run_id == run_id
-            same_query = (wanted_query is not None and "QUERY" in job.parameters
-                          and _newlines(job.parameters["QUERY"]) == wanted_query)
+            same_query = (adql is not None and "QUERY" in job.parameters
+                          and documents.same_text(job.parameters["QUERY"], adql))
             if same_run or same_query:
-                found[url] = created
+                found[ref.url] = created
         epoch = datetime.min.replace(tzinfo=UTC)
         order = {url: i for i, url in enumerate(found)}  # list order breaks ties (newest first)
         return sorted(found, key=lambda u: (found[u] or epoch, -order[u]), reverse=True)
@@ -412,7 +386,7 @@ class Remote:
                         raise ServiceResponseInvalid(
                             f"the capabilities document is larger than {CAPABILITIES_LIMIT} "
                             "bytes", service=self.service)
-            info.update(_read_capabilities(_parse_xml(body, self.service, "capabilities")))
+            info.update(documents.capabilities(body, self.service))
         except Exception as exc:  # noqa: BLE001 - provenance must never fail a job
             if isinstance(exc, _RetryableStatus):
                 message = f"HTTP {exc.status}: {exc.message}"
@@ -515,7 +489,7 @@ class Remote:
                 encoded = response.headers.get("Content-Encoding", "identity").lower() != "identity"
                 if encoded:
                     state["ranges"] = False  # offsets of an encoded body are not file offsets
-                total = None if encoded else _int(response.headers.get("Content-Length"))
+                total = None if encoded else documents.as_int(response.headers.get("Content-Length"))
                 if response.status_code == 206:
                     start = _range_start(response.headers.get("Content-Range"))
                     if start != state["written"]:
@@ -551,12 +525,11 @@ class Remote:
             if not ok:
                 dest.unlink(missing_ok=True)
         content_type = state["type"]
-        if state["written"] <= CHUNK and _looks_like_xml(content_type, dest):
-            message = _error_votable_message(dest.read_bytes())
-            if message is not None:
-                dest.unlink(missing_ok=True)
-                raise JobFailed(self._scrub(f"the result is an error document: {message}"),
-                                summary=self._scrub(message), service=self.service)
+        message = documents.result_error_message(dest, content_type, state["written"])
+        if message is not None:
+            dest.unlink(missing_ok=True)
+            raise JobFailed(self._scrub(f"the result is an error document: {message}"),
+                            summary=self._scrub(message), service=self.service)
         return Downloaded(path=dest, bytes=state["written"], sha256=digest,
                           content_type=content_type)
 
@@ -568,6 +541,10 @@ class Remote:
         self.requests += 1
         response = self.session.request(method, url, **kw)
         self.requests += len(response.history)  # each redirect hop was a request too
+        log.debug("HTTP %s %s%s -> %s%s", method, _public_url(url),
+                  f"?{_query_words(kw.get('params'))}" if kw.get("params") else "",
+                  response.status_code,
+                  f" after {len(response.history)} redirect(s)" if response.history else "")
         if _is_transient_status(response.status_code):
             message, detail = _answer(response)
             retry_after = _retry_after(response.headers.get("Retry-After"))
@@ -687,211 +664,6 @@ class Remote:
         return text
 
 
-# --- documents ----------------------------------------------------------------------------------
-
-
-def _job_status(url: str, body: bytes, service: str, *, base: str | None = None) -> JobStatus:
-    """Read a UWS job document (UWS 1.1 §2.2.1, schema in the UWS 1.1 appendix).
-
-    ``base`` is the URL the document was finally read from (after redirects); relative result
-    links are resolved against it.
-    """
-    root = _parse_xml(body, service, "job document")
-    if _local(root.tag) != "job":
-        raise ServiceResponseInvalid(f"expected a UWS job document, got <{_local(root.tag)}>: "
-                                     f"{_snippet(body)}", service=service)
-    phase = _child_text(root, "phase")
-    if not phase:
-        raise ServiceResponseInvalid(f"the job document has no phase: {_snippet(body)}",
-                                     service=service)
-    if phase.upper() not in phases.UWS_PHASES:  # UWS 1.1 §2.1.3: a closed list
-        raise ServiceResponseInvalid(f"the job document has the phase {shorten(phase, 40)!r}, "
-                                     f"which UWS does not define: {_snippet(body)}",
-                                     service=service)
-    parameters: dict[str, str] = {}
-    params_el = _child(root, "parameters")
-    for param in _children(params_el, "parameter") if params_el is not None else ():
-        name = param.get("id")
-        if name:
-            parameters[name.upper()] = param.text or ""  # exact: values are case- and space-sensitive
-    result_url = None
-    results_el = _child(root, "results")
-    # Some servers list a "result" for an ABORTED job (empty, or a partial table ending in an
-    # error): it is never offered, nor is one of a failed job (UWS 1.1 §2.1.3: results are the
-    # output of a job that ran to completion).
-    if results_el is not None and phase.strip().upper() not in (phases.ABORTED, phases.ERROR):
-        results = [(r.get("id"), _href(r)) for r in _children(results_el, "result")]
-        named = [href for rid, href in results if rid == "result" and href]
-        anyone = [href for _, href in results if href]
-        chosen = (named or anyone or [None])[0]
-        result_url = urljoin(base or url, chosen) if chosen else None
-    summary = _child(root, "errorSummary")
-    return JobStatus(
-        url=url, phase=phase.upper(), run_id=_child_text(root, "runId"),
-        uws_version=root.get("version"),
-        creation_time=_child_text(root, "creationTime"), start_time=_child_text(root, "startTime"),
-        end_time=_child_text(root, "endTime"), destruction=_child_text(root, "destruction"),
-        error_summary=_child_text(summary, "message") if summary is not None else None,
-        error_type=summary.get("type") if summary is not None else None,
-        result_url=result_url, parameters=parameters)
-
-
-def _parse_xml(body: bytes, service: str, what: str) -> Element:
-    if _is_web_page(body):
-        raise NotATapService(f"a web page came back where a {what} was expected: {service} is "
-                             "not a TAP service, or a login page is in the way",
-                             service=service, detail=_page_text(body))
-    try:
-        return SafeET.fromstring(body)
-    except (ParseError, DefusedXmlException, ValueError) as exc:
-        raise ServiceResponseInvalid(f"the {what} is not readable XML ({exc.__class__.__name__}): "
-                                     f"{_snippet(body)}", service=service) from None
-
-
-def _local(tag: Any) -> str:
-    return tag.rsplit("}", 1)[-1] if isinstance(tag, str) else ""
-
-
-def _children(parent: Element, name: str) -> list[Element]:
-    """Children by local name: namespaces vary (or are missing) between servers."""
-    return [c for c in parent if _local(c.tag) == name]
-
-
-def _child(parent: Element, name: str) -> Element | None:
-    found = _children(parent, name)
-    return found[0] if found else None
-
-
-def _child_text(parent: Element | None, name: str) -> str | None:
-    if parent is None:
-        return None
-    element = _child(parent, name)
-    if element is None or element.text is None:
-        return None  # absent or xsi:nil
-    text = element.text.strip()
-    return text or None
-
-
-def _href(element: Element) -> str | None:
-    href = element.get(XLINK_HREF)
-    if href is None:
-        href = next((v for k, v in element.attrib.items() if _local(k) == "href"), None)
-    return href
-
-
-TAP_STANDARD = "ivo://ivoa.net/std/tap"  # TAPRegExt 1.0 §2; ivo identifiers ignore case
-
-
-def _read_capabilities(root: Element) -> dict[str, Any]:
-    """The TAP capability of a VOSI 1.1 capabilities document (TAPRegExt 1.0 §2)."""
-    if _local(root.tag) != "capabilities":
-        raise ValueError(f"expected <capabilities>, got <{_local(root.tag)}>")
-    taps = [c for c in _children(root, "capability")
-            if (c.get("standardID") or "").strip().lower().split("#")[0] == TAP_STANDARD]
-    if not taps:
-        raise ValueError("the capabilities name no TAP capability (ivo://ivoa.net/std/TAP)")
-    # Prefer the one that describes the service in TAPRegExt terms (it has a <language>).
-    cap = next((c for c in taps if _child(c, "language") is not None), taps[0])
-    interfaces = _children(cap, "interface")
-    std = [i for i in interfaces if i.get("role") == "std"] or interfaces
-    versions = sorted((i.get("version") for i in std if i.get("version")), key=_version_key)
-    adql: list[str] = []
-    for language in _children(cap, "language"):
-        if (_child_text(language, "name") or "").upper() != "ADQL":
-            continue
-        for version in _children(language, "version"):
-            text = (version.text or "").strip() or (version.get("ivo-id") or "").rsplit("#v", 1)[-1]
-            if text and text not in adql:
-                adql.append(text)
-    uploads = [m.get("ivo-id") for m in _children(cap, "uploadMethod") if m.get("ivo-id")]
-    output = _limits(_child(cap, "outputLimit"))
-    # TAPRegExt 1.0 §2.5: each outputFormat has a MIME type, aliases and maybe an ivo-id;
-    # what jobdesk may ask for instead of plain TABLEDATA (see jobdesk.formats).
-    formats = [{"mime": (_child_text(f, "mime") or "").strip(),
-                "aliases": [(a.text or "").strip() for a in _children(f, "alias")],
-                "ivo_id": f.get("ivo-id")}
-               for f in _children(cap, "outputFormat")]
-    return {"output_formats": formats,
-            "standard_id": cap.get("standardID"),
-            "interface_version": versions[-1] if versions else None,
-            "adql_versions": adql,
-            "output_limit": output,
-            "retention": _limits(_child(cap, "retentionPeriod")),
-            "execution_duration": _limits(_child(cap, "executionDuration")),
-            "upload_methods": uploads}
-
-
-def _limits(element: Element | None) -> dict[str, Any] | None:
-    """TAPRegExt 1.0 ``default``/``hard`` limits as integers (``unit`` kept when given)."""
-    if element is None:
-        return None
-    out: dict[str, Any] = {}
-    for name in ("default", "hard"):
-        child = _child(element, name)
-        if child is not None:
-            out[name] = _int((child.text or "").strip())
-            if child.get("unit"):
-                out["unit"] = child.get("unit")
-    return out
-
-
-def _version_key(version: str) -> tuple[int, ...]:
-    return tuple(int(p) if p.isdigit() else 0 for p in version.split("."))
-
-
-def _newest_first(refs: list[Element], limit: int) -> list[Element]:
-    """At most ``limit`` job-list entries, newest first.
-
-    By creationTime when every entry has one; else the server's order: newest first when it
-    honoured ``LAST`` (UWS 1.1 §2.2.2.1), and when it sent more than asked for (LAST ignored, as
-    UWS 1.0 servers do) its list is taken as oldest first (common practice, no source).
-    """
-    times = [_when(_child_text(r, "creationTime")) for r in refs]
-    if refs and all(t is not None for t in times):
-        ordered = [r for _, r in sorted(zip(times, refs), key=lambda p: p[0], reverse=True)]
-    elif len(refs) > limit:
-        ordered = list(reversed(refs))
-    else:
-        ordered = list(refs)
-    return ordered[:limit]
-
-
-def _newlines(text: str) -> str:
-    """XML 1.0 §2.11 turns CR LF and lone CR into LF, so a text read back from a document
-    can differ from what was sent only there; nothing else is changed."""
-    return text.replace("\r\n", "\n").replace("\r", "\n")
-
-
-def _document_message(body: bytes) -> str:
-    """An error document's message: a VOTable's QUERY_STATUS text, or plain text as it is."""
-    message = _error_votable_message(body)
-    if message is not None:
-        return message
-    text = body.decode("utf-8", errors="replace").strip()
-    if text.startswith("<"):
-        try:
-            root = SafeET.fromstring(body)
-            text = " ".join(" ".join(root.itertext()).split())
-        except (ParseError, DefusedXmlException, ValueError):
-            pass
-    return text
-
-
-def _is_web_page(body: bytes, content_type: str | None = None) -> bool:
-    """An HTML page (a portal, a login form, a proxy's error page), not a protocol document."""
-    if content_type and "html" in content_type.lower():
-        return True
-    head = body[:512].lstrip().lower()
-    return head.startswith((b"<!doctype html", b"<html")) or b"<html" in head[:200]
-
-
-def _page_text(body: bytes) -> str:
-    """The readable text of a web page, short (for ``detail``)."""
-    text = body[:65536].decode("utf-8", errors="replace")
-    text = re.sub(r"(?is)<(script|style)\b.*?</\1>", " ", text)
-    return shorten(" ".join(re.sub(r"<[^>]{0,500}>", " ", text).split()))
-
-
 _STATUS_WORDS = {400: "bad request", 401: "login required", 403: "forbidden", 404: "not found",
                  405: "method not allowed", 410: "gone", 413: "request too large",
                  429: "too many requests", 500: "internal error", 502: "bad gateway",
@@ -904,31 +676,12 @@ def _status_words(status: int) -> str:
 
 
 def _answer(response: requests.Response) -> tuple[str, str | None]:
-    """An error answer as (the service's own words worth showing, raw detail).
-
-    A web page (HTML error or login page) is not shown as a message: its text goes to detail.
-    """
+    """An error answer as (the service's own words worth showing, raw detail)."""
     try:
         body = response.content[:65536]
     except requests.exceptions.RequestException:
         return "", None
-    if _is_web_page(body, response.headers.get("Content-Type")):
-        return "the answer is a web page, not a service message", _page_text(body)
-    return _response_message(response), None
-
-
-def _response_message(response: requests.Response) -> str:
-    """The service's own words for an error answer, short."""
-    try:
-        body = response.content[:65536]
-    except requests.exceptions.RequestException:
-        return "(no readable body)"
-    verbatim = _error_votable_message(body)
-    if verbatim is not None:
-        return shorten(verbatim, MESSAGE_LIMIT)  # an error document's message stays as written
-    message = _document_message(body)
-    message = " ".join(re.sub(r"<[^>]{0,200}>", " ", message).split())  # strip stray HTML tags
-    return shorten(message or response.reason or "(empty answer)")
+    return documents.answer_message(body, response.headers.get("Content-Type"), response.reason)
 
 
 class _Hasher:
@@ -977,13 +730,6 @@ def _body_pieces(response: requests.Response) -> Iterator[bytes]:
         yield piece
 
 
-def _looks_like_xml(content_type: str | None, path: Path) -> bool:
-    if content_type and "xml" in content_type.lower():
-        return True
-    with open(path, "rb") as f:
-        return f.read(64).lstrip().startswith(b"<")
-
-
 # --- small helpers ------------------------------------------------------------------------------
 
 
@@ -1017,22 +763,10 @@ def _at_least_1_1(version: str | None) -> bool:
     return (major, minor) >= (1, 1)
 
 
-def _when(value: str | None) -> datetime | None:
-    """An ISO 8601 timestamp as an aware UTC datetime; a zone-less one is taken as UTC."""
-    if not value:
-        return None
-    try:
-        parsed = datetime.fromisoformat(value.strip().replace("Z", "+00:00"))
-    except ValueError:
-        return None
-    return parsed if parsed.tzinfo else parsed.replace(tzinfo=UTC)
-
-
-def _int(value: str | None) -> int | None:
-    try:
-        return int(value) if value is not None else None
-    except ValueError:
-        return None
+def _query_words(params: Any) -> str:
+    """Query parameters for the request log (names and short values; no secrets travel there)."""
+    items = params.items() if isinstance(params, Mapping) else (params or ())
+    return "&".join(f"{k}={shorten(str(v), 40, one_line=True)}" for k, v in items)
 
 
 def _range_start(value: str | None) -> int | None:
@@ -1050,9 +784,3 @@ def _public_url(url: str) -> str:
     if parts.port:
         host = f"{host}:{parts.port}"
     return urlunsplit((parts.scheme, host, parts.path, "", ""))
-
-
-def _snippet(body: bytes | str, limit: int = 200) -> str:
-    """A body quoted on one line, short, for a message about a malformed answer."""
-    text = body.decode("utf-8", errors="replace") if isinstance(body, bytes) else body
-    return repr(shorten(text, limit, one_line=True))

@@ -21,11 +21,11 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from jobdesk import votable_stream
-from jobdesk.errors import error_document_message as error_message  # re-exported: public contract
+from jobdesk.documents import error_document_message as error_message  # re-exported: public contract
 from jobdesk.votable_stream import ResultSummary, describe, scan  # re-exported: public contract
 
 __all__ = ["ResultSummary", "to_parquet", "scan", "load_table", "load_frame", "error_message",
-           "read_metadata"]
+           "read_metadata", "describe"]
 
 ROW_GROUP_ROWS = 1_000_000    # larger row groups read back faster ...
 ROW_GROUP_BYTES = 8 << 20     # ... but are held, and encoded, in memory (peak ~3x this)

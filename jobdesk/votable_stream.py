@@ -27,7 +27,8 @@ import pyarrow.compute as pc
 import pyarrow.csv as pacsv
 from defusedxml.ElementTree import DefusedXMLParser
 
-from jobdesk.errors import ServiceResponseInvalid, shorten, status_that_counts
+from jobdesk.documents import query_status
+from jobdesk.errors import ServiceResponseInvalid, shorten
 
 __all__ = ["ResultSummary", "RowSink", "read", "scan", "describe"]
 
@@ -705,9 +706,9 @@ class _Reader:
 
     def summary(self) -> ResultSummary:
         # DALI 1.1 §4.4.1: the last QUERY_STATUS of the results RESOURCE counts (OVERFLOW
-        # follows the TABLE); the same rule as for error documents (jobdesk.errors).
-        _, status, message = status_that_counts(self.statuses) or ("", "OK", None)
-        return ResultSummary(rows=self.rows, status=status or "OK", message=message,
+        # follows the TABLE); the same rule as for error documents (jobdesk.documents).
+        status, message = query_status(self.statuses)
+        return ResultSummary(rows=self.rows, status=status, message=message,
                              fields=[f.describe() for f in self.fields], infos=dict(self.infos))
 
 
