@@ -439,7 +439,4 @@ def deprecated_alias(module: str, name: str, namespace: dict):
 
 
 def __getattr__(name: str):
-    if name == "error_document_message":  # moved to jobdesk.documents, with the other readers
-        from jobdesk.documents import error_document_message
-        return error_document_message
     return deprecated_alias(__name__, name, globals())

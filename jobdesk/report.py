@@ -15,8 +15,11 @@ import json
 import os
 import tempfile
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-from jobdesk.compare import Comparison
+if TYPE_CHECKING:   # types only: compare calls this module, never the other way round
+    from jobdesk.compare import Comparison
+
 
 STYLE = """
 body{font:14px/1.45 system-ui,sans-serif;margin:2em auto;max-width:72em;color:#1d2430}
