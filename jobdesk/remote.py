@@ -216,7 +216,8 @@ class Remote:
     def wait(self, job_url: str, *, deadline: float | None = None,
              on_status: Callable[[JobStatus], None] | None = None,
              known: JobStatus | None = None,
-             on_trouble: Callable[[JobdeskError], None] | None = None) -> JobStatus:
+             on_trouble: Callable[[JobdeskError], None] | None = None,
+             expect: str | None = None) -> JobStatus:
         """Follow the job until a terminal phase or ``deadline`` (a ``time.monotonic()`` value).
 
         Uses UWS 1.1 blocking WAIT when the job document says version 1.1 and the service is seen
@@ -226,11 +227,19 @@ class Remote:
         last status is returned: the caller decides what that means.
 
         ``known`` is the status the caller last read (from an earlier call): waiting then starts
-        with a blocking read instead of a plain one, saving a request per call.  ``on_trouble``
-        hears of every transient failure as it happens, so the caller can say so at once.
+        with a blocking read instead of a plain one, saving a request per call.  Without it,
+        ``expect`` is the phase the job is most likely in, and the first read is
+        ``WAIT=…&PHASE=expect``: just after RUN that is QUEUED (UWS 1.1 §2.2.3.5: "typically"
+        QUEUED, maybe EXECUTING at once), so one read both waits out the queue and shows the
+        job running, where a plain read would often only have said QUEUED.  UWS 1.1 §2.2.1.2
+        makes a wrong guess free: the service must answer at once when the job is not in that
+        phase, and a UWS 1.0 service answers every read at once (one that refuses the parameter
+        is read again plainly).  ``on_trouble`` hears of every transient failure as it happens,
+        so the caller can say so at once.
         """
         last: JobStatus | None = known
         blocking: bool | None = None if known is None else _at_least_1_1(known.uws_version)
+        guess = expect if known is None else None
         backoff = FIRST_POLL
         failures = 0
         while True:
@@ -238,27 +247,34 @@ class Remote:
                 return last
             if last is not None and deadline is not None and time.monotonic() >= deadline:
                 return last
+            guessing = False  # a blocking first read on the caller's guess
             try:
-                if last is None:
+                window = self._window(deadline)
+                # The phase to block on: the one last read, else the guess (tried once only:
+                # after a failure the next read is a plain one).
+                on, guess = (last.phase if last is not None else guess), None
+                if last is not None and blocking and on in WAITABLE and window < 1:
+                    return last  # the deadline is here: a short poll would only cost requests
+                if on in WAITABLE and window >= 1 and (blocking or last is None):
+                    guessing = last is None
+                    started = time.monotonic()
+                    current = self.status(job_url, wait=window, phase=on)
+                    if current.phase == on and time.monotonic() - started < min(1.0, window / 2):
+                        # Back at once with nothing changed: WAIT is ignored here.
+                        log.debug("%s ignores WAIT; polling instead", self.service)
+                        blocking = False
+                elif last is None:
                     current = self.status(job_url)
                 else:
-                    window = self._window(deadline)
-                    if blocking and last.phase in WAITABLE and window < 1:
-                        return last  # the deadline is here: a short poll would only cost requests
-                    if blocking and last.phase in WAITABLE:
-                        started = time.monotonic()
-                        current = self.status(job_url, wait=window, phase=last.phase)
-                        if (current.phase == last.phase
-                                and time.monotonic() - started < min(1.0, window / 2)):
-                            # Back at once with nothing changed: WAIT is ignored here.
-                            log.debug("%s ignores WAIT; polling instead", self.service)
-                            blocking = False
-                    else:
-                        self._pause(backoff, deadline)
-                        backoff = min(backoff * 2, max(self.max_backoff, FIRST_POLL))
-                        current = self.status(job_url)
+                    self._pause(backoff, deadline)
+                    backoff = min(backoff * 2, max(self.max_backoff, FIRST_POLL))
+                    current = self.status(job_url)
             except (ServiceUnreachable, ServiceRefused) as exc:
                 if isinstance(exc, ServiceRefused) and not _is_transient_status(exc.status):
+                    if guessing:
+                        log.debug("%s refused WAIT/PHASE on a first read: %s", self.service,
+                                  exc.message)
+                        continue  # the guess is spent: the next read is a plain one
                     raise
                 failures += 1
                 if on_trouble is not None:

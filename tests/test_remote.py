@@ -317,6 +317,96 @@ def test_a_known_status_starts_with_a_blocking_read(tap):
     assert reads and all("WAIT" in {k.upper() for k in query} for _, _, query in reads)
 
 
+def _reads(seen: Recorder, job: str) -> list[str | None]:
+    """The PHASE of every read of the job document (None for a plain read), in order."""
+    path = urlsplit(job).path
+    return [query.get("PHASE", [None])[0] for m, p, query in seen.seen if m == "GET" and p == path]
+
+
+def test_after_run_one_blocking_read_waits_out_the_queue(tap):
+    # UWS 1.1 §2.2.3.5: RUN "typically" leaves the job QUEUED; §2.2.1.2: WAIT with PHASE=QUEUED
+    # then returns when it starts, so the first read already shows it EXECUTING (a plain read
+    # would have said QUEUED and cost a second read to see it start).
+    tap.configure(queue_delay=1.0, exec_delay=1.0)
+    session = requests.Session()
+    seen = Recorder(session)
+    remote = make_remote(tap, session)
+    job = remote.create(QUERY)
+    remote.run(job)
+    phases_seen: list[str] = []
+    final = remote.wait(job, deadline=_deadline(30), expect="QUEUED",
+                        on_status=lambda s: phases_seen.append(s.phase))
+    assert final.phase == "COMPLETED"
+    assert phases_seen == ["EXECUTING", "COMPLETED"]
+    assert _reads(seen, job) == ["QUEUED", "EXECUTING"]
+    assert remote.requests == 2 + 2             # create, run, the two reads
+
+
+def test_a_wrong_guess_costs_no_more_than_a_plain_read(tap):
+    tap.configure(exec_delay=1.5)               # no queue: EXECUTING at once after RUN
+    session = requests.Session()
+    seen = Recorder(session)
+    remote = make_remote(tap, session)
+    job = remote.create(QUERY)
+    remote.run(job)
+    final = remote.wait(job, deadline=_deadline(30), expect="QUEUED")
+    assert final.phase == "COMPLETED"
+    # §2.2.1.2: "must return immediately ... if the PHASE is not in specified state".
+    assert _reads(seen, job) == ["QUEUED", "EXECUTING"]
+
+
+def test_a_guess_sent_to_a_uws_1_0_service_is_answered_at_once_then_polled(tap):
+    tap.configure(exec_delay=1.0, no_wait=True)
+    session = requests.Session()
+    seen = Recorder(session)
+    remote = make_remote(tap, session, max_backoff=2.0)
+    job = remote.create(QUERY)
+    remote.run(job)
+    final = remote.wait(job, deadline=_deadline(30), expect="QUEUED")
+    assert final.phase == "COMPLETED" and final.uws_version is None
+    # UWS 1.1 §2.2.1.2: a 1.0 server answers at once; the version seen, WAIT is not sent again.
+    assert seen.count(param="WAIT") == 1
+    assert len(_reads(seen, job)) >= 2
+
+
+@pytest.fixture
+def wait_refusing_service():
+    """A real HTTP server whose job refuses any WAIT parameter with 400 (as a strict UWS 1.0
+    server might) and otherwise answers a finished UWS 1.0 job document: localtap never
+    refuses WAIT, so this one is needed to show the first read falling back to a plain one."""
+
+    class Strict(BaseHTTPRequestHandler):
+        def do_GET(self):
+            strict = "WAIT" in parse_qs(urlsplit(self.path).query)
+            body = (b"unknown parameter WAIT" if strict else
+                    b'<job xmlns="http://www.ivoa.net/xml/UWS/v1.0"><jobId>j</jobId>'
+                    b"<phase>COMPLETED</phase></job>")
+            self.send_response(400 if strict else 200)
+            self.send_header("Content-Type", "text/plain" if strict else "text/xml")
+            self.send_header("Content-Length", str(len(body)))
+            self.end_headers()
+            self.wfile.write(body)
+
+        def log_message(self, *args):
+            pass
+
+    server = ThreadingHTTPServer(("127.0.0.1", 0), Strict)
+    thread = threading.Thread(target=server.serve_forever, daemon=True)
+    thread.start()
+    yield f"http://127.0.0.1:{server.server_address[1]}/tap"
+    server.shutdown()
+    server.server_close()
+
+
+def test_a_refused_guess_is_followed_by_a_plain_read(wait_refusing_service):
+    remote = Remote(wait_refusing_service, attempts=2, max_backoff=0.01, timeout=5.0)
+    job = wait_refusing_service + "/async/j"
+    assert remote.wait(job, deadline=_deadline(10), expect="QUEUED").phase == "COMPLETED"
+    assert remote.requests == 2                 # the refused guess, then the plain read
+    with pytest.raises(ServiceRefused):         # without a guess a refusal still counts
+        remote.status(job, wait=5, phase="QUEUED")
+
+
 def test_an_unknown_job_is_lost(tap):
     remote = make_remote(tap)
     with pytest.raises(JobLost):
