@@ -508,6 +508,41 @@ def test_a_download_that_always_breaks_gives_up_and_leaves_no_file(tap, tmp_path
     assert not dest.exists()
 
 
+@pytest.mark.parametrize("cut", [4096, 20_000])
+def test_early_writeback_leaves_a_resumed_download_byte_for_byte(tap, tmp_path, big_result,
+                                                                 monkeypatch, cut):
+    url, clean = big_result
+    monkeypatch.setattr(remote_mod, "WRITEBACK_STEP", 4096)   # ask for writeback very often
+    tap.configure(drop_result_after=cut, drop_result_times=2)
+    remote = make_remote(tap, attempts=5)
+    got = remote.download(url, tmp_path / "wb.vot")
+    assert got.sha256 == clean.sha256 == hashlib.sha256(got.path.read_bytes()).hexdigest()
+    assert got.bytes == clean.bytes == got.path.stat().st_size
+    assert remote.requests == 3                 # two cut answers, then the rest
+
+
+def test_early_writeback_and_a_restart_from_zero_give_the_whole_file(tap, tmp_path, monkeypatch):
+    # /sync answers have no Accept-Ranges: a cut answer makes the file start again (truncated).
+    monkeypatch.setattr(remote_mod, "WRITEBACK_STEP", 4096)
+    url = f"{tap.url}/sync?LANG=ADQL&QUERY=SELECT+*+FROM+{TABLE}+ORDER+BY+orrery_id"
+    tap.configure(drop_result_after=30_000, drop_result_times=1)
+    got = make_remote(tap, attempts=3).download(url, tmp_path / "sync.vot")
+    body = got.path.read_bytes()
+    assert len(body) == got.bytes and got.sha256 == hashlib.sha256(body).hexdigest()
+    assert len(Table.read(io.BytesIO(body), format="votable")) == 500
+
+
+def test_a_body_cut_short_of_its_length_is_still_detected(tap, tmp_path, big_result, monkeypatch):
+    url, clean = big_result
+    monkeypatch.setattr(remote_mod, "WRITEBACK_STEP", 4096)
+    tap.configure(drop_result_after=clean.bytes - 10, drop_result_times=1)  # 10 bytes short
+    remote = make_remote(tap, attempts=1)       # one try: no resume to make up for it
+    with pytest.raises(ServiceUnreachable) as caught:
+        remote.download(url, tmp_path / "short.vot")
+    assert "broke off" in str(caught.value)     # the Content-Length was not reached
+    assert not (tmp_path / "short.vot").exists()
+
+
 def test_a_lost_result_is_reported_as_lost(tap, tmp_path, big_result):
     url, _ = big_result
     tap.configure(lose_jobs=True)
