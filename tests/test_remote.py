@@ -95,6 +95,16 @@ def _free_port() -> int:
         return s.getsockname()[1]
 
 
+def _serving(handler: type[BaseHTTPRequestHandler]):
+    """A fixture's body: serve ``handler`` on a free loopback port, yield its /tap URL, stop."""
+    server = ThreadingHTTPServer(("127.0.0.1", 0), handler)
+    thread = threading.Thread(target=server.serve_forever, daemon=True)
+    thread.start()
+    yield f"http://127.0.0.1:{server.server_address[1]}/tap"
+    server.shutdown()
+    server.server_close()
+
+
 def _iso(moment: datetime) -> str:
     return moment.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
 
@@ -390,12 +400,7 @@ def wait_refusing_service():
         def log_message(self, *args):
             pass
 
-    server = ThreadingHTTPServer(("127.0.0.1", 0), Strict)
-    thread = threading.Thread(target=server.serve_forever, daemon=True)
-    thread.start()
-    yield f"http://127.0.0.1:{server.server_address[1]}/tap"
-    server.shutdown()
-    server.server_close()
+    yield from _serving(Strict)
 
 
 def test_a_refused_guess_is_followed_by_a_plain_read(wait_refusing_service):
@@ -627,12 +632,7 @@ def echoing_service():
         def log_message(self, *args):
             pass
 
-    server = ThreadingHTTPServer(("127.0.0.1", 0), Echo)
-    thread = threading.Thread(target=server.serve_forever, daemon=True)
-    thread.start()
-    yield f"http://127.0.0.1:{server.server_address[1]}/tap"
-    server.shutdown()
-    server.server_close()
+    yield from _serving(Echo)
 
 
 def test_echoed_credentials_are_scrubbed_from_messages(echoing_service):
