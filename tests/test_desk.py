@@ -12,6 +12,7 @@ import subprocess
 import sys
 import time
 from datetime import datetime, timezone
+from urllib.parse import parse_qs, urlsplit
 
 import numpy as np
 import pytest
@@ -289,6 +290,51 @@ def test_requests_per_job_are_counted(tmp_path, no_wait):
             assert spent <= 8
         else:
             assert spent > 4  # polling costs more requests
+
+
+@pytest.mark.parametrize("queued", [0.0, 1.0])
+def test_every_request_of_a_job_with_wait_traced(tmp_path, queued):
+    """The requests of one job with WAIT, in order, on a service that starts jobs at once and
+    on one that keeps them QUEUED a second first (performance case 4).
+
+    create, RUN, one WAIT&PHASE=QUEUED (UWS 1.1 §2.2.3.5: a started job is typically QUEUED;
+    §2.2.1.2: the read returns when it leaves QUEUED, at once if it already has), one
+    WAIT&PHASE=EXECUTING that returns at COMPLETED, the result: 5.  That is one more than
+    ``1 + duration/WAIT + 3`` allows a 1 s job: the read that shows the job EXECUTING, which
+    the index (the sidebar, another process) would otherwise not learn before the job ends.
+    The VOSI capabilities are read once per service and index, not per job.
+    """
+    session = requests.Session()
+    seen: list[tuple[str, str, str | None]] = []   # (method, path, PHASE of a WAIT)
+
+    def trace(response, *args, **kwargs):  # a response hook: every answer, redirects included
+        parts = urlsplit(response.request.url)
+        seen.append((response.request.method, parts.path,
+                     parse_qs(parts.query).get("PHASE", [None])[0]))
+
+    session.hooks["response"].append(trace)
+    with serve(state=tmp_path / "tap", rows=ROWS, exec_delay=1.0, queue_delay=queued) as tap:
+        desk = Desk(tmp_path / "d", session=session, wait_window=30)
+        jobs = []
+        for n in (1, 2):
+            start = len(seen)
+            job = desk.submit(tap.url, f"SELECT TOP {n} orrery_id FROM orrery.sources "
+                                       "ORDER BY orrery_id").wait(progress=False)
+            jobs.append((job, [(m, p.rsplit("/", 1)[-1] if "/async/" in p else p, w)
+                               for m, p, w in seen[start:]]))
+        served = _requests(tap)
+    (first, first_trace), (second, trace) = jobs
+    job_id = second.record["job_url"].rsplit("/", 1)[-1]
+    assert trace == [("POST", "/tap/async", None),
+                     ("POST", "phase", None),
+                     ("GET", job_id, "QUEUED"),
+                     ("GET", job_id, "EXECUTING"),
+                     ("GET", "result", None)]
+    assert [m for m, p, w in first_trace if p == "/tap/capabilities"] == ["GET"]
+    assert first.record["requests"] == second.record["requests"] == len(trace) == 5
+    assert served == 5 + 5 + 1                      # the two jobs and the one capabilities read
+    history = [h["phase"] for h in desk.index.history(second.id)]
+    assert history == ["UNSENT", "SUBMITTED", "EXECUTING", "COMPLETED"]
 
 
 # --- [8] streaming, checksums, interrupted downloads -----------------------------------------

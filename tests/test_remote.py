@@ -95,6 +95,16 @@ def _free_port() -> int:
         return s.getsockname()[1]
 
 
+def _serving(handler: type[BaseHTTPRequestHandler]):
+    """A fixture's body: serve ``handler`` on a free loopback port, yield its /tap URL, stop."""
+    server = ThreadingHTTPServer(("127.0.0.1", 0), handler)
+    thread = threading.Thread(target=server.serve_forever, daemon=True)
+    thread.start()
+    yield f"http://127.0.0.1:{server.server_address[1]}/tap"
+    server.shutdown()
+    server.server_close()
+
+
 def _iso(moment: datetime) -> str:
     return moment.astimezone(UTC).strftime("%Y-%m-%dT%H:%M:%SZ")
 
@@ -317,6 +327,91 @@ def test_a_known_status_starts_with_a_blocking_read(tap):
     assert reads and all("WAIT" in {k.upper() for k in query} for _, _, query in reads)
 
 
+def _reads(seen: Recorder, job: str) -> list[str | None]:
+    """The PHASE of every read of the job document (None for a plain read), in order."""
+    path = urlsplit(job).path
+    return [query.get("PHASE", [None])[0] for m, p, query in seen.seen if m == "GET" and p == path]
+
+
+def test_after_run_one_blocking_read_waits_out_the_queue(tap):
+    # UWS 1.1 §2.2.3.5: RUN "typically" leaves the job QUEUED; §2.2.1.2: WAIT with PHASE=QUEUED
+    # then returns when it starts, so the first read already shows it EXECUTING (a plain read
+    # would have said QUEUED and cost a second read to see it start).
+    tap.configure(queue_delay=1.0, exec_delay=1.0)
+    session = requests.Session()
+    seen = Recorder(session)
+    remote = make_remote(tap, session)
+    job = remote.create(QUERY)
+    remote.run(job)
+    phases_seen: list[str] = []
+    final = remote.wait(job, deadline=_deadline(30), expect="QUEUED",
+                        on_status=lambda s: phases_seen.append(s.phase))
+    assert final.phase == "COMPLETED"
+    assert phases_seen == ["EXECUTING", "COMPLETED"]
+    assert _reads(seen, job) == ["QUEUED", "EXECUTING"]
+    assert remote.requests == 2 + 2             # create, run, the two reads
+
+
+def test_a_wrong_guess_costs_no_more_than_a_plain_read(tap):
+    tap.configure(exec_delay=1.5)               # no queue: EXECUTING at once after RUN
+    session = requests.Session()
+    seen = Recorder(session)
+    remote = make_remote(tap, session)
+    job = remote.create(QUERY)
+    remote.run(job)
+    final = remote.wait(job, deadline=_deadline(30), expect="QUEUED")
+    assert final.phase == "COMPLETED"
+    # §2.2.1.2: "must return immediately ... if the PHASE is not in specified state".
+    assert _reads(seen, job) == ["QUEUED", "EXECUTING"]
+
+
+def test_a_guess_sent_to_a_uws_1_0_service_is_answered_at_once_then_polled(tap):
+    tap.configure(exec_delay=1.0, no_wait=True)
+    session = requests.Session()
+    seen = Recorder(session)
+    remote = make_remote(tap, session, max_backoff=2.0)
+    job = remote.create(QUERY)
+    remote.run(job)
+    final = remote.wait(job, deadline=_deadline(30), expect="QUEUED")
+    assert final.phase == "COMPLETED" and final.uws_version is None
+    # UWS 1.1 §2.2.1.2: a 1.0 server answers at once; the version seen, WAIT is not sent again.
+    assert seen.count(param="WAIT") == 1
+    assert len(_reads(seen, job)) >= 2
+
+
+@pytest.fixture
+def wait_refusing_service():
+    """A real HTTP server whose job refuses any WAIT parameter with 400 (as a strict UWS 1.0
+    server might) and otherwise answers a finished UWS 1.0 job document: localtap never
+    refuses WAIT, so this one is needed to show the first read falling back to a plain one."""
+
+    class Strict(BaseHTTPRequestHandler):
+        def do_GET(self):
+            strict = "WAIT" in parse_qs(urlsplit(self.path).query)
+            body = (b"unknown parameter WAIT" if strict else
+                    b'<job xmlns="http://www.ivoa.net/xml/UWS/v1.0"><jobId>j</jobId>'
+                    b"<phase>COMPLETED</phase></job>")
+            self.send_response(400 if strict else 200)
+            self.send_header("Content-Type", "text/plain" if strict else "text/xml")
+            self.send_header("Content-Length", str(len(body)))
+            self.end_headers()
+            self.wfile.write(body)
+
+        def log_message(self, *args):
+            pass
+
+    yield from _serving(Strict)
+
+
+def test_a_refused_guess_is_followed_by_a_plain_read(wait_refusing_service):
+    remote = Remote(wait_refusing_service, attempts=2, max_backoff=0.01, timeout=5.0)
+    job = wait_refusing_service + "/async/j"
+    assert remote.wait(job, deadline=_deadline(10), expect="QUEUED").phase == "COMPLETED"
+    assert remote.requests == 2                 # the refused guess, then the plain read
+    with pytest.raises(ServiceRefused):         # without a guess a refusal still counts
+        remote.status(job, wait=5, phase="QUEUED")
+
+
 def test_an_unknown_job_is_lost(tap):
     remote = make_remote(tap)
     with pytest.raises(JobLost):
@@ -418,6 +513,41 @@ def test_a_download_that_always_breaks_gives_up_and_leaves_no_file(tap, tmp_path
     assert not dest.exists()
 
 
+@pytest.mark.parametrize("cut", [4096, 20_000])
+def test_early_writeback_leaves_a_resumed_download_byte_for_byte(tap, tmp_path, big_result,
+                                                                 monkeypatch, cut):
+    url, clean = big_result
+    monkeypatch.setattr(remote_mod, "WRITEBACK_STEP", 4096)   # ask for writeback very often
+    tap.configure(drop_result_after=cut, drop_result_times=2)
+    remote = make_remote(tap, attempts=5)
+    got = remote.download(url, tmp_path / "wb.vot")
+    assert got.sha256 == clean.sha256 == hashlib.sha256(got.path.read_bytes()).hexdigest()
+    assert got.bytes == clean.bytes == got.path.stat().st_size
+    assert remote.requests == 3                 # two cut answers, then the rest
+
+
+def test_early_writeback_and_a_restart_from_zero_give_the_whole_file(tap, tmp_path, monkeypatch):
+    # /sync answers have no Accept-Ranges: a cut answer makes the file start again (truncated).
+    monkeypatch.setattr(remote_mod, "WRITEBACK_STEP", 4096)
+    url = f"{tap.url}/sync?LANG=ADQL&QUERY=SELECT+*+FROM+{TABLE}+ORDER+BY+orrery_id"
+    tap.configure(drop_result_after=30_000, drop_result_times=1)
+    got = make_remote(tap, attempts=3).download(url, tmp_path / "sync.vot")
+    body = got.path.read_bytes()
+    assert len(body) == got.bytes and got.sha256 == hashlib.sha256(body).hexdigest()
+    assert len(Table.read(io.BytesIO(body), format="votable")) == 500
+
+
+def test_a_body_cut_short_of_its_length_is_still_detected(tap, tmp_path, big_result, monkeypatch):
+    url, clean = big_result
+    monkeypatch.setattr(remote_mod, "WRITEBACK_STEP", 4096)
+    tap.configure(drop_result_after=clean.bytes - 10, drop_result_times=1)  # 10 bytes short
+    remote = make_remote(tap, attempts=1)       # one try: no resume to make up for it
+    with pytest.raises(ServiceUnreachable) as caught:
+        remote.download(url, tmp_path / "short.vot")
+    assert "broke off" in str(caught.value)     # the Content-Length was not reached
+    assert not (tmp_path / "short.vot").exists()
+
+
 def test_a_lost_result_is_reported_as_lost(tap, tmp_path, big_result):
     url, _ = big_result
     tap.configure(lose_jobs=True)
@@ -502,12 +632,7 @@ def echoing_service():
         def log_message(self, *args):
             pass
 
-    server = ThreadingHTTPServer(("127.0.0.1", 0), Echo)
-    thread = threading.Thread(target=server.serve_forever, daemon=True)
-    thread.start()
-    yield f"http://127.0.0.1:{server.server_address[1]}/tap"
-    server.shutdown()
-    server.server_close()
+    yield from _serving(Echo)
 
 
 def test_echoed_credentials_are_scrubbed_from_messages(echoing_service):
