@@ -760,7 +760,10 @@ def _dicts(cur) -> list[dict]:
 
 def _records(cur) -> list[JobRecord]:
     """The job rows a cursor holds, as typed records."""
-    return [JobRecord.from_row(row) for row in _dicts(cur)]
+    rows = cur.fetchall()
+    if not rows:   # the poller's usual pass: nothing active, nothing more to do
+        return []
+    return JobRecord.from_rows(tuple(d[0] for d in cur.description), rows)
 
 
 def _encode(fields: dict) -> dict:

@@ -257,7 +257,7 @@ class Lifecycle:
             else:
                 status = remote.wait(record.job_url, deadline=deadline, on_status=seen,
                                      known=self._last_status.get(record.job_url),
-                                     on_trouble=trouble)
+                                     on_trouble=trouble, expect=phases.QUEUED)
             self._last_status[record.job_url] = status
             if status.phase == phases.COMPLETED:
                 self.fetch(record, status, remote, on_transfer=on_transfer)

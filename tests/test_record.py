@@ -48,6 +48,18 @@ def test_as_dict_is_json_safe_and_keeps_truncated_as_0_or_1():
     assert rec["phase"] == "COMPLETED" and rec.get("truncated") == 1 and rec.get("nope") is None
 
 
+def test_records_built_from_one_page_share_no_mutable_values():
+    columns = ("id", "key", "service", "adql", "phase", "created", "uploads", "warnings")
+    rows = [(str(i) * 16, "k", "s", "SELECT 1", "COMPLETED", float(i), "{}", "[]")
+            for i in range(3)]
+    first, second, _ = JobRecord.from_rows(columns, rows)
+    first.uploads["t"] = "abc"
+    first.warnings.append("w")
+    assert second.uploads == {} and second.warnings == [], \
+        "an empty JSON value must be a fresh object per record"
+    assert [r.created for r in (first, second)] == [0.0, 1.0] and first.rows is None
+
+
 def _file_of_the_previous_version(path: Path) -> None:
     """An index as the version before typed records left it (every migration but the last)."""
     db = sqlite_utils.Database(sqlite3.connect(path, isolation_level=None))
